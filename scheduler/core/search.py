@@ -1,0 +1,506 @@
+"""The scheduling core of one search: a deterministic state machine.
+
+Theory of operation. The core owns the trials of one search, the rung boards of each
+bracket and the queue of segments waiting for a slot. It is driven entirely from outside:
+``apply(event)`` (or the method of the same meaning) changes the state and returns what to do.
+It never does I/O, never reads a clock and never draws a random number itself; the sampler it
+is given owns the only randomness, seeded by the caller. Given the same events in the same
+order, two cores make the same decisions, and ``snapshot()`` / ``restore()`` carry that state
+across a restart.
+
+Asynchronous modes follow ASHA (Li et al., MLSys 2020, Algorithm 2): on every free slot, a
+requeued segment goes first; else scan the rungs top-down and promote the best trial of a rung
+that is in the top floor(n_k / eta) and not yet promoted; else start a new trial at the bottom
+rung. Synchronous modes wait at a barrier until every trial of a rung has a result, then
+promote the top floor(n_k / eta) of them.
+
+Cost: each decision and each result is O(K log n) for K rungs and n results per rung.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from collections.abc import Mapping
+from typing import Any
+
+from .errors import RejectedEvent, UnknownTrial
+from .events import (
+    DRAINED,
+    IDLE,
+    Ask,
+    Cancel,
+    Cancelled,
+    Continue,
+    Crashed,
+    Drained,
+    Event,
+    Failed,
+    Finished,
+    Idle,
+    Lost,
+    Outcome,
+    Parked,
+    Report,
+    Requeued,
+    Culled,
+    Segment,
+    StopAdmitting,
+    Yielded,
+)
+from .ladder import Budget
+from .plan import SearchPlan
+from .ranking import RungBoard, to_loss
+from .samplers.base import Sampler
+from .states import ACTIVE, CANCELLED, FINAL_STATES, PARKED, QUEUED, STATES, advance
+
+__all__ = ["SearchCore", "TrialView", "SNAPSHOT_FORMAT"]
+
+SNAPSHOT_FORMAT = 1
+
+
+class _Trial:
+    """The core's record of one trial. ``rung`` is the rung worked towards while queued or
+    active, and the last rung with a result otherwise; ``saved`` is the budget reached."""
+
+    __slots__ = ("id", "bracket", "state", "rung", "attempt", "saved", "loss", "crashes", "config")
+
+    def __init__(self, tid: int, bracket: int, config: dict[str, Any]) -> None:
+        self.id = tid
+        self.bracket = bracket
+        self.state = QUEUED
+        self.rung = 0
+        self.attempt = 0
+        self.saved: Budget = 0
+        self.loss: float | None = None
+        self.crashes = 0
+        self.config = config
+
+
+class _Bracket:
+    """Rung boards of one ladder, plus barrier bookkeeping when it is synchronous."""
+
+    __slots__ = ("budgets", "top", "level_offset", "boards", "counts", "level", "created", "outstanding")
+
+    def __init__(self, budgets: tuple[Budget, ...], level_offset: int, counts: tuple[int, ...] | None) -> None:
+        self.budgets = budgets
+        self.top = len(budgets) - 1
+        self.level_offset = level_offset
+        self.boards = [RungBoard() for _ in budgets]
+        self.counts = counts
+        self.level = 0  # synchronous: the rung whose barrier is open
+        self.created = 0  # trials started in this bracket
+        self.outstanding = 0  # synchronous: trials at ``level`` without a result yet
+
+
+class TrialView:
+    """A read-only look at one trial (for adapters, the CLI and tests)."""
+
+    __slots__ = ("id", "bracket", "state", "rung", "attempt", "budget", "loss", "crashes", "config")
+
+    def __init__(self, t: _Trial) -> None:
+        self.id, self.bracket, self.state, self.rung = t.id, t.bracket, t.state, t.rung
+        self.attempt, self.budget, self.loss, self.crashes = t.attempt, t.saved, t.loss, t.crashes
+        self.config = dict(t.config)
+
+    def __repr__(self) -> str:
+        return f"TrialView(id={self.id}, state={self.state!r}, rung={self.rung}, loss={self.loss!r})"
+
+
+class SearchCore:
+    """One search's ladders, trials and queue."""
+
+    def __init__(self, plan: SearchPlan, sampler: Sampler) -> None:
+        self.plan = plan
+        self.sampler = sampler
+        self._eta = plan.eta
+        self._maximize = plan.maximize
+        self._stopping = plan.stopping
+        self._synchronous = plan.synchronous
+        self._brackets = [_Bracket(bp.ladder.budgets, bp.level_offset, bp.counts) for bp in plan.brackets()]
+        self._trials: list[_Trial] = []
+        self._queue: deque[int] = deque()
+        self._active = 0
+        self._admitting = True
+        self._cursor = 0  # asynchronous: next bracket to deal a new trial to; synchronous: bracket running
+        self._handlers = {
+            Ask: lambda e: self.ask(),
+            Report: lambda e: self.report(e.trial, e.attempt, e.rung, e.value),
+            Lost: lambda e: self.lost(e.trial, e.attempt),
+            Crashed: lambda e: self.crashed(e.trial, e.attempt, e.reason),
+            Yielded: lambda e: self.yielded(e.trial, e.attempt),
+            Cancel: lambda e: self.cancel(e.trial),
+            StopAdmitting: lambda e: self.stop_admitting(),
+        }
+
+    # ---- the one entry point ------------------------------------------------------------
+
+    def apply(self, event: Event) -> Outcome | None:
+        """Apply one event; return the command or verdict it produces."""
+        try:
+            handler = self._handlers[type(event)]
+        except KeyError:
+            raise RejectedEvent(f"not an event the core knows: {event!r}") from None
+        return handler(event)
+
+    # ---- decisions ------------------------------------------------------------------------
+
+    def ask(self) -> Segment | Idle | Drained:
+        """A slot is free: the segment to run there, ``Idle`` or ``Drained``."""
+        if self._queue:
+            return self._dispatch(self._trials[self._queue.popleft()])
+        if self._synchronous:
+            return self._ask_synchronous()
+        brackets = self._brackets
+        count = len(brackets)
+        start = self._cursor
+        for i in range(count):
+            index = (start + i) % count
+            bracket = brackets[index]
+            segment = self._promote_async(bracket)
+            if segment is not None:
+                self._cursor = (index + 1) % count
+                return segment
+            if self._admitting:
+                trial = self._new_trial(index)
+                if trial is not None:
+                    self._cursor = (index + 1) % count
+                    return self._dispatch(trial)
+        if self._active == 0 and not self._admitting:
+            return DRAINED
+        return IDLE
+
+    def _promote_async(self, bracket: _Bracket) -> Segment | None:
+        eta = self._eta
+        boards = bracket.boards
+        for k in range(bracket.top - 1, -1, -1):
+            entry = boards[k].promotable(eta)
+            if entry is not None:
+                boards[k].withdraw(entry)
+                boards[k].promoted += 1
+                trial = self._trials[entry[1]]
+                trial.state = advance(trial.state, "promote", trial.id)
+                trial.rung = k + 1
+                return self._dispatch(trial)
+        return None
+
+    def _ask_synchronous(self) -> Segment | Idle | Drained:
+        brackets = self._brackets
+        while self._cursor < len(brackets):
+            bracket = brackets[self._cursor]
+            assert bracket.counts is not None
+            if bracket.level == 0 and self._admitting and bracket.created < bracket.counts[0]:
+                trial = self._new_trial(self._cursor)
+                if trial is not None:
+                    bracket.outstanding += 1
+                    return self._dispatch(trial)
+            if bracket.outstanding > 0:
+                return IDLE  # the barrier
+            if not self._open_next_level(bracket):
+                self._cursor += 1
+                continue
+            if self._queue:
+                return self._dispatch(self._trials[self._queue.popleft()])
+        return DRAINED if self._active == 0 else IDLE
+
+    def _open_next_level(self, bracket: _Bracket) -> bool:
+        """Barrier reached at ``bracket.level``: promote the top floor(n / eta) of its n results
+        (a trial that failed has no result and does not count). False when the bracket is over
+        (top rung done, or nobody left to promote)."""
+        board = bracket.boards[bracket.level]
+        if bracket.level == bracket.top or len(board) == 0:
+            return False
+        keep = len(board) // self._eta
+        promoted = 0
+        for _loss, tid in board.results:
+            trial = self._trials[tid]
+            if trial.state != PARKED or trial.rung != bracket.level:
+                continue
+            if promoted < keep:
+                trial.state = advance(trial.state, "promote", tid)
+                trial.rung = bracket.level + 1
+                self._queue.append(tid)
+                promoted += 1
+            else:
+                trial.state = advance(trial.state, "cull", tid)
+        board.promoted = promoted
+        if promoted == 0:
+            return False
+        bracket.level += 1
+        bracket.outstanding = promoted
+        return True
+
+    def _new_trial(self, bracket_index: int) -> _Trial | None:
+        max_trials = self.plan.max_trials
+        if max_trials is not None and len(self._trials) >= max_trials:
+            self._admitting = False
+            return None
+        config = self.sampler.propose()
+        if config is None:
+            self._admitting = False
+            return None
+        trial = _Trial(len(self._trials), bracket_index, config)
+        self._trials.append(trial)
+        self._brackets[bracket_index].created += 1
+        return trial
+
+    def _dispatch(self, trial: _Trial) -> Segment:
+        trial.state = advance(trial.state, "dispatch", trial.id)
+        trial.attempt += 1
+        self._active += 1
+        budgets = self._brackets[trial.bracket].budgets
+        if self._stopping:
+            return Segment(
+                trial.id, trial.attempt, trial.rung, trial.bracket, trial.saved, budgets[-1],
+                trial.config, budgets[trial.rung:],
+            )
+        target = budgets[trial.rung]
+        return Segment(trial.id, trial.attempt, trial.rung, trial.bracket, trial.saved, target, trial.config, (target,))
+
+    # ---- results and failures -------------------------------------------------------------
+
+    def _running(self, tid: int, attempt: int) -> _Trial:
+        if not 0 <= tid < len(self._trials):
+            raise UnknownTrial(f"trial {tid} was never created by this search")
+        trial = self._trials[tid]
+        if trial.state != ACTIVE:
+            raise RejectedEvent(f"trial {tid} is {trial.state}; no segment of it is running")
+        if attempt != trial.attempt:
+            raise RejectedEvent(f"trial {tid}: attempt {attempt} is not the running attempt {trial.attempt}")
+        return trial
+
+    def report(self, tid: int, attempt: int, rung: int, value: float) -> Parked | Finished | Continue | Culled:
+        """Segment ``attempt`` of trial ``tid`` measured ``value`` at ``rung``."""
+        trial = self._running(tid, attempt)
+        if rung != trial.rung:
+            raise RejectedEvent(f"trial {tid}: a result for rung {rung} arrived, but it is running to rung {trial.rung}")
+        loss = to_loss(float(value), self._maximize)
+        bracket = self._brackets[trial.bracket]
+        board = bracket.boards[rung]
+        trial.loss = loss
+        trial.saved = bracket.budgets[rung]
+        self.sampler.observe(tid, trial.config, rung + bracket.level_offset, loss)
+        top = rung == bracket.top
+        if self._stopping:
+            entry = board.record(loss, tid, False)
+            if not top and board.rank(entry) * self._eta < len(board):
+                trial.state = advance(trial.state, "continue", tid)
+                trial.rung = rung + 1
+                return Continue(tid, rung + 1)
+            self._active -= 1
+            if top:
+                trial.state = advance(trial.state, "finish", tid)
+                return Finished(tid)
+            trial.state = advance(trial.state, "cull", tid)
+            return Culled(tid, rung)
+        self._active -= 1
+        board.record(loss, tid, not top and not self._synchronous)
+        if self._synchronous:
+            bracket.outstanding -= 1
+        if top:
+            trial.state = advance(trial.state, "finish", tid)
+            return Finished(tid)
+        trial.state = advance(trial.state, "park", tid)
+        return Parked(tid, rung)
+
+    def lost(self, tid: int, attempt: int) -> Requeued:
+        """The worker or machine died: requeue from the last checkpoint; not the trial's fault."""
+        trial = self._running(tid, attempt)
+        return self._requeue(trial, "requeue")
+
+    def yielded(self, tid: int, attempt: int) -> Requeued:
+        """The segment saved and stopped when asked: requeue it at its rung."""
+        trial = self._running(tid, attempt)
+        return self._requeue(trial, "requeue")
+
+    def crashed(self, tid: int, attempt: int, reason: str = "") -> Requeued | Failed:
+        """User code failed: retry up to ``plan.max_crashes`` times, then fail the trial."""
+        trial = self._running(tid, attempt)
+        trial.crashes += 1
+        if trial.crashes <= self.plan.max_crashes:
+            return self._requeue(trial, "retry")
+        self._active -= 1
+        trial.state = advance(trial.state, "fail", tid)
+        self._leave_barrier(trial)
+        return Failed(tid, reason)
+
+    def _requeue(self, trial: _Trial, move: str) -> Requeued:
+        trial.state = advance(trial.state, move, trial.id)
+        self._active -= 1
+        self._queue.append(trial.id)
+        return Requeued(trial.id, trial.rung)
+
+    def _leave_barrier(self, trial: _Trial) -> None:
+        # Only the running bracket has unfinished trials, all at its open level.
+        if self._synchronous:
+            self._brackets[trial.bracket].outstanding -= 1
+
+    def cancel(self, tid: int) -> Cancelled:
+        """Withdraw a trial. A running segment's later result will be refused."""
+        if not 0 <= tid < len(self._trials):
+            raise UnknownTrial(f"trial {tid} was never created by this search")
+        trial = self._trials[tid]
+        state = trial.state
+        if state in FINAL_STATES:
+            raise RejectedEvent(f"trial {tid} is already {state}")
+        trial.state = advance(state, "cancel", tid)
+        if state == ACTIVE:
+            self._active -= 1
+            self._leave_barrier(trial)
+        elif state == QUEUED:
+            self._queue.remove(tid)
+            self._leave_barrier(trial)
+        elif state == PARKED and trial.loss is not None:
+            self._brackets[trial.bracket].boards[trial.rung].withdraw((trial.loss, tid))
+        return Cancelled(tid)
+
+    def stop_admitting(self) -> None:
+        """Start no new trials from now on (limits reached, or the user asked)."""
+        self._admitting = False
+
+    # ---- reading ----------------------------------------------------------------------------
+
+    @property
+    def admitting(self) -> bool:
+        return self._admitting
+
+    @property
+    def active(self) -> int:
+        return self._active
+
+    def __len__(self) -> int:
+        return len(self._trials)
+
+    def trial(self, tid: int) -> TrialView:
+        if not 0 <= tid < len(self._trials):
+            raise UnknownTrial(f"trial {tid} was never created by this search")
+        return TrialView(self._trials[tid])
+
+    def trials(self) -> list[TrialView]:
+        return [TrialView(t) for t in self._trials]
+
+    def value_of(self, loss: float) -> float:
+        """The measured value a loss stands for (inverse of the direction normalisation)."""
+        return -loss if self._maximize else loss
+
+    def leaderboard(self, limit: int = 10) -> list[TrialView]:
+        """Best trials first: the highest rung reached, then the best result there.
+
+        Reads the rung boards, whose budgets are comparable within a level across brackets.
+        """
+        by_level: dict[int, list[RungBoard]] = {}
+        for bracket in self._brackets:
+            for k, board in enumerate(bracket.boards):
+                if len(board):
+                    by_level.setdefault(k + bracket.level_offset, []).append(board)
+        seen: set[int] = set()
+        out: list[TrialView] = []
+        for level in sorted(by_level, reverse=True):
+            merged = sorted(e for board in by_level[level] for e in board.results[: limit + len(seen)])
+            for _loss, tid in merged:
+                if tid in seen:
+                    continue
+                seen.add(tid)
+                out.append(TrialView(self._trials[tid]))
+                if len(out) >= limit:
+                    return out
+        return out
+
+    def statistics(self) -> dict[str, Any]:
+        """A read-only summary: trials per state, rung occupancy per bracket, the best so far."""
+        states = dict.fromkeys(STATES, 0)
+        for t in self._trials:
+            states[t.state] += 1
+        brackets = []
+        for bracket in self._brackets:
+            rungs = []
+            for k, board in enumerate(bracket.boards):
+                rungs.append({"budget": bracket.budgets[k], "results": len(board), "promoted": board.promoted, "running": 0})
+            brackets.append({"rungs": rungs, "created": bracket.created})
+        for t in self._trials:
+            if t.state == ACTIVE:
+                brackets[t.bracket]["rungs"][t.rung]["running"] += 1
+        best = self.leaderboard(1)
+        return {
+            "trials": len(self._trials),
+            "states": states,
+            "active": self._active,
+            "queued": len(self._queue),
+            "admitting": self._admitting,
+            "brackets": brackets,
+            "best": None if not best or best[0].loss is None else {
+                "trial": best[0].id,
+                "value": self.value_of(best[0].loss),
+                "rung": best[0].rung,
+                "budget": best[0].budget,
+            },
+        }
+
+    # ---- snapshot ---------------------------------------------------------------------------
+
+    def snapshot(self) -> dict[str, Any]:
+        """The whole state as JSON-compatible data (losses may be +inf)."""
+        t = self._trials
+        return {
+            "format": SNAPSHOT_FORMAT,
+            "plan": self.plan.to_dict(),
+            "trials": {
+                "bracket": [x.bracket for x in t],
+                "state": [x.state for x in t],
+                "rung": [x.rung for x in t],
+                "attempt": [x.attempt for x in t],
+                "saved": [x.saved for x in t],
+                "loss": [x.loss for x in t],
+                "crashes": [x.crashes for x in t],
+                "config": [x.config for x in t],
+            },
+            "brackets": [
+                {
+                    "boards": [
+                        {"results": [list(e) for e in board.results], "unpromoted": [list(e) for e in board.unpromoted],
+                         "promoted": board.promoted}
+                        for board in b.boards
+                    ],
+                    "level": b.level,
+                    "created": b.created,
+                    "outstanding": b.outstanding,
+                }
+                for b in self._brackets
+            ],
+            "queue": list(self._queue),
+            "active": self._active,
+            "admitting": self._admitting,
+            "cursor": self._cursor,
+            "sampler": self.sampler.state(),
+        }
+
+    @classmethod
+    def restore(cls, snapshot: Mapping[str, Any], sampler: Sampler) -> SearchCore:
+        """A core equal to the one the snapshot was taken from. ``sampler`` must be built with
+        the same arguments as the original's; its state is restored from the snapshot."""
+        if snapshot.get("format") != SNAPSHOT_FORMAT:
+            raise RejectedEvent(f"snapshot format {snapshot.get('format')!r} is not {SNAPSHOT_FORMAT}")
+        core = cls(SearchPlan.from_dict(dict(snapshot["plan"])), sampler)
+        cols = snapshot["trials"]
+        for tid, bracket in enumerate(cols["bracket"]):
+            trial = _Trial(tid, bracket, cols["config"][tid])
+            trial.state = cols["state"][tid]
+            trial.rung = cols["rung"][tid]
+            trial.attempt = cols["attempt"][tid]
+            trial.saved = cols["saved"][tid]
+            trial.loss = cols["loss"][tid]
+            trial.crashes = cols["crashes"][tid]
+            core._trials.append(trial)
+        for bracket, data in zip(core._brackets, snapshot["brackets"], strict=True):
+            for board, bdata in zip(bracket.boards, data["boards"], strict=True):
+                board.results.update((float(loss), int(tid)) for loss, tid in bdata["results"])
+                board.unpromoted.update((float(loss), int(tid)) for loss, tid in bdata["unpromoted"])
+                board.promoted = bdata["promoted"]
+            bracket.level = data["level"]
+            bracket.created = data["created"]
+            bracket.outstanding = data["outstanding"]
+        core._queue.extend(snapshot["queue"])
+        core._active = snapshot["active"]
+        core._admitting = snapshot["admitting"]
+        core._cursor = snapshot["cursor"]
+        sampler.restore(snapshot["sampler"])
+        return core
