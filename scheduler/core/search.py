@@ -211,11 +211,13 @@ class SearchCore:
             return False
         keep = len(board) // self._eta
         promoted = 0
-        for _loss, tid in board.results:
+        # A cancelled trial keeps its place in the ranking: the places are the top floor(n/eta)
+        # of the results, not the top floor(n/eta) of the trials still around.
+        for rank, (_loss, tid) in enumerate(board.results):
             trial = self._trials[tid]
             if trial.state != PARKED or trial.rung != bracket.level:
                 continue
-            if promoted < keep:
+            if rank < keep:
                 trial.state = advance(trial.state, "promote", tid)
                 trial.rung = bracket.level + 1
                 self._queue.append(tid)

@@ -1,0 +1,43 @@
+"""Storage adapter: checkpoints, measurements, trials and failures on shared storage.
+
+Workers on many machines write here concurrently (one writer per trial segment) and the
+head reads; every write is atomic, so no reader ever sees half a file. See
+``docs/storage.md`` for the layout, schemas and how to read the files with other tools.
+
+    store = Store("/shared/rungway")          # or "file:///shared/rungway", "s3://bucket/x"
+    files = store.search("lr-sweep")
+    files.write_measurements([...])
+    frame = files.read_measurements()
+"""
+
+from __future__ import annotations
+
+from .checkpoints import CheckpointInfo, LoadedCheckpoint
+from .errors import InvalidRows, StorageCorrupt, StorageError, StorageFull, StoragePermission
+from .schemas import (
+    FAILURES_SCHEMA,
+    MEASUREMENT_KEY,
+    MEASUREMENTS_SCHEMA,
+    PARAM_PREFIX,
+    TRIALS_BASE_SCHEMA,
+    trials_schema,
+)
+from .search import SearchFiles, Store
+
+__all__ = [
+    "Store",
+    "SearchFiles",
+    "CheckpointInfo",
+    "LoadedCheckpoint",
+    "MEASUREMENTS_SCHEMA",
+    "MEASUREMENT_KEY",
+    "TRIALS_BASE_SCHEMA",
+    "FAILURES_SCHEMA",
+    "PARAM_PREFIX",
+    "trials_schema",
+    "StorageError",
+    "StorageFull",
+    "StoragePermission",
+    "StorageCorrupt",
+    "InvalidRows",
+]

@@ -1,0 +1,285 @@
+"""Measurements, trials and failures tables on shared storage.
+
+Measurements are append-only: each write is one new part file, so concurrent workers never
+touch the same file. Compaction folds many parts into one block and records, in the
+block's Parquet key-value metadata (``rungway.merged_parts``), the names of the parts it
+holds. That record is what makes compaction crash-safe: a part named by a block is
+skipped by readers and deleted by the next compaction, so a crash between writing the
+block and deleting its parts never shows a row twice. Reads also drop duplicate keys
+(trial, rung, attempt, seq, metric), as a second line of defence.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import posixpath
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import pandas as pd
+import pyarrow as pa
+
+from .errors import InvalidRows, StorageCorrupt, StorageError
+from .fs import Volume
+from .layout import SearchLayout, block_number, is_block, is_part
+from .schemas import (
+    FAILURES_SCHEMA,
+    MEASUREMENT_KEY,
+    MEASUREMENTS_SCHEMA,
+    PARAM_PREFIX,
+    TRIALS_BASE_SCHEMA,
+    rows_to_table,
+    trials_to_table,
+)
+
+__all__ = [
+    "MERGED_PARTS_KEY",
+    "write_measurements",
+    "read_measurements",
+    "compact_measurements",
+    "write_trials",
+    "read_trials",
+    "record_failure",
+    "read_failures",
+]
+
+MERGED_PARTS_KEY = b"rungway.merged_parts"
+_READ_TRIES = 8
+
+
+def _conforms(table: pa.Table, schema: pa.Schema, path: str) -> pa.Table:
+    if not table.schema.equals(schema, check_metadata=False):
+        raise StorageCorrupt(
+            f"{path} does not have the expected columns ({table.schema.names} instead of "
+            f"{schema.names}); move it out of the search folder and resume",
+            path=path,
+        )
+    return table.replace_schema_metadata(None)
+
+
+# -- measurements ---------------------------------------------------------------------
+
+
+def write_measurements(volume: Volume, layout: SearchLayout, rows: Sequence[Mapping[str, Any]]) -> str:
+    """Write ``rows`` (one trial segment's measurements) as one new part file; return its path."""
+    table = rows_to_table(rows, MEASUREMENTS_SCHEMA)
+    if table.num_rows == 0:
+        raise InvalidRows("no rows to write")
+    segments = {
+        (row["trial"], row["rung"], row["attempt"])
+        for row in table.select(["trial", "rung", "attempt"]).to_pylist()
+    }
+    if len(segments) != 1:
+        raise InvalidRows(
+            f"one write holds one trial segment (trial, rung, attempt); got {sorted(segments)[:4]}",
+            column="trial",
+        )
+    path = layout.part(*segments.pop())
+    volume.write_table(path, table)
+    return path
+
+
+def _merged_parts(schema: pa.Schema, path: str) -> set[str]:
+    raw = (schema.metadata or {}).get(MERGED_PARTS_KEY)
+    if raw is None:
+        return set()
+    try:
+        names = json.loads(raw)
+    except ValueError as exc:
+        raise StorageCorrupt(f"{path} has an unreadable part list ({exc}); move it aside", path=path) from exc
+    return set(names)
+
+
+def _read_listing(volume: Volume, folder: str, files: list[str]) -> list[pa.Table] | None:
+    """Blocks, then the parts no block holds; None if a file vanished since the listing."""
+    tables: list[pa.Table] = []
+    covered: set[str] = set()
+    for name in (f for f in files if is_block(f)):
+        path = posixpath.join(folder, name)
+        table = volume.read_table(path)
+        if table is None:
+            return None
+        covered |= _merged_parts(table.schema, path)
+        tables.append(_conforms(table, MEASUREMENTS_SCHEMA, path))
+    for name in (f for f in files if is_part(f) and f not in covered):
+        path = posixpath.join(folder, name)
+        table = volume.read_table(path)
+        if table is None:  # merged into a block and deleted after we listed
+            return None
+        tables.append(_conforms(table, MEASUREMENTS_SCHEMA, path))
+    return tables
+
+
+def _read_measurement_tables(volume: Volume, layout: SearchLayout) -> list[pa.Table]:
+    folder = layout.measurements
+    for _ in range(_READ_TRIES):
+        tables = _read_listing(volume, folder, volume.list_files(folder))
+        if tables is not None:
+            return tables
+    raise StorageError(
+        f"measurements under {folder} kept changing while being read; try again", path=folder
+    )
+
+
+def read_measurements(volume: Volume, layout: SearchLayout) -> pd.DataFrame:
+    """All measurements of the search, one row per key, sorted by the key."""
+    tables = _read_measurement_tables(volume, layout)
+    table = pa.concat_tables(tables) if tables else MEASUREMENTS_SCHEMA.empty_table()
+    frame = table.to_pandas()
+    key = list(MEASUREMENT_KEY)
+    frame = frame.sort_values(key, kind="stable").drop_duplicates(subset=key, keep="first")
+    return frame.reset_index(drop=True)
+
+
+@dataclass(frozen=True)
+class CompactionPlan:
+    """What one compaction will do, worked out from a single listing."""
+
+    pending: list[str]  # parts no block holds yet, to merge
+    leftovers: list[str]  # parts a block already holds (an earlier compaction stopped early)
+    next_block: int
+
+
+def plan_compaction(volume: Volume, layout: SearchLayout) -> CompactionPlan:
+    """List the measurements folder once and sort its parts into pending and leftovers."""
+    folder = layout.measurements
+    files = volume.list_files(folder)
+    covered: set[str] = set()
+    numbers = [0]
+    for name in files:
+        number = block_number(name)
+        if number is None:
+            continue
+        numbers.append(number)
+        path = posixpath.join(folder, name)
+        schema = volume.read_schema(path)
+        if schema is not None:
+            covered |= _merged_parts(schema, path)
+    parts = [name for name in files if is_part(name)]
+    return CompactionPlan(
+        pending=[name for name in parts if name not in covered],
+        leftovers=[name for name in parts if name in covered],
+        next_block=max(numbers) + 1,
+    )
+
+
+def write_block(volume: Volume, layout: SearchLayout, parts: Sequence[str], number: int) -> tuple[str, list[str]]:
+    """Merge ``parts`` into block ``number``; return (block path, the part names it holds)."""
+    folder = layout.measurements
+    tables: list[pa.Table] = []
+    merged: list[str] = []
+    for name in parts:
+        path = posixpath.join(folder, name)
+        table = volume.read_table(path)
+        if table is None:  # another compactor took it; its block holds the rows
+            continue
+        tables.append(_conforms(table, MEASUREMENTS_SCHEMA, path))
+        merged.append(name)
+    block = layout.block(number)
+    if not merged:
+        return block, []
+    table = pa.concat_tables(tables).replace_schema_metadata({MERGED_PARTS_KEY: json.dumps(merged).encode()})
+    volume.write_table(block, table)
+    return block, merged
+
+
+def delete_parts(volume: Volume, layout: SearchLayout, parts: Sequence[str]) -> int:
+    """Delete the named part files; returns how many this call removed."""
+    return sum(volume.delete(posixpath.join(layout.measurements, name)) for name in parts)
+
+
+def compact_measurements(volume: Volume, layout: SearchLayout, min_parts: int = 64) -> int:
+    """Merge part files into one block once at least ``min_parts`` are waiting.
+
+    Only parts present in this call's listing are merged and deleted, so parts written
+    meanwhile survive to the next call. Parts an interrupted compaction already merged are
+    deleted whatever ``min_parts`` says. Returns the number of part files removed.
+    """
+    if isinstance(min_parts, bool) or not isinstance(min_parts, int) or min_parts < 1:
+        raise ValueError(f"min_parts must be an int >= 1, got {min_parts!r}")
+    plan = plan_compaction(volume, layout)
+    removed = delete_parts(volume, layout, plan.leftovers)
+    if len(plan.pending) >= min_parts:
+        _, merged = write_block(volume, layout, plan.pending, plan.next_block)
+        removed += delete_parts(volume, layout, merged)
+    return removed
+
+
+# -- trials ---------------------------------------------------------------------------
+
+
+def write_trials(
+    volume: Volume, layout: SearchLayout, rows: Sequence[Mapping[str, Any]], param_names: Sequence[str]
+) -> None:
+    """Replace the trials table with ``rows`` (one per trial) in one atomic write."""
+    table = trials_to_table(rows, param_names)
+    trials = table.column("trial").to_pylist()
+    if len(set(trials)) != len(trials):
+        raise InvalidRows("each trial appears once in the trials table", column="trial")
+    volume.write_table(layout.trials, table)
+
+
+def read_trials(volume: Volume, layout: SearchLayout) -> pd.DataFrame:
+    """The trials table; empty (base columns only) before the first write."""
+    table = volume.read_table(layout.trials)
+    if table is None:
+        return TRIALS_BASE_SCHEMA.empty_table().to_pandas()
+    head = pa.schema(list(table.schema)[: len(TRIALS_BASE_SCHEMA)])
+    if not head.equals(TRIALS_BASE_SCHEMA) or not all(
+        name.startswith(PARAM_PREFIX) for name in table.schema.names[len(TRIALS_BASE_SCHEMA):]
+    ):
+        raise StorageCorrupt(
+            f"{layout.trials} does not have the trials columns (found {table.schema.names}); "
+            f"move it aside and let the head rewrite it",
+            path=layout.trials,
+        )
+    return table.to_pandas()
+
+
+# -- failures -------------------------------------------------------------------------
+
+
+def record_failure(
+    volume: Volume,
+    layout: SearchLayout,
+    trial: int,
+    rung: int,
+    attempt: int,
+    error_type: str,
+    message: str,
+    traceback_text: str,
+    node: str | None = None,
+) -> str:
+    """Keep one failed attempt's error for later inspection; returns the file written."""
+    row = {
+        "trial": trial,
+        "rung": rung,
+        "attempt": attempt,
+        "error_type": error_type,
+        "message": message,
+        "traceback": traceback_text,
+        "node": node,
+        "recorded_at": dt.datetime.now(dt.timezone.utc),
+    }
+    table = rows_to_table([row], FAILURES_SCHEMA)
+    path = layout.failure(trial, rung, attempt)
+    volume.write_table(path, table)
+    return path
+
+
+def read_failures(volume: Volume, layout: SearchLayout) -> pd.DataFrame:
+    """Every recorded failure, oldest first within each trial."""
+    folder = layout.failures
+    tables = []
+    for name in volume.list_files(folder):
+        if not name.endswith(".parquet"):
+            continue
+        path = posixpath.join(folder, name)
+        table = volume.read_table(path)
+        if table is not None:
+            tables.append(_conforms(table, FAILURES_SCHEMA, path))
+    table = pa.concat_tables(tables) if tables else FAILURES_SCHEMA.empty_table()
+    frame = table.to_pandas().sort_values(["trial", "rung", "attempt", "recorded_at"], kind="stable")
+    return frame.reset_index(drop=True)
