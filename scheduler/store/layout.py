@@ -6,6 +6,7 @@
         spec.toml                                   the search spec, as the user wrote it
         trials.parquet                              one row per trial (replaced whole)
         measurements/part-t<T>-r<R>-a<A>-<hex>.parquet   one per write (one trial segment)
+        measurements/part-batch-n<N>-<hex>.parquet       the head's batch of N segments' final rows
         measurements/block-<n>-<hex>.parquet        compacted parts
         checkpoints/<T>/<budget>-<attempt>.ckpt     opaque bytes
         checkpoints/<T>/<budget>-<attempt>.ckpt.sha256   "<hex digest>  <file name>\\n"
@@ -140,6 +141,10 @@ class SearchLayout:
     def part(self, trial: int, rung: int, attempt: int) -> str:
         """A fresh, collision-free name for one measurements part file."""
         return posixpath.join(self.measurements, f"{PART_PREFIX}t{trial}-r{rung}-a{attempt}-{token()}{PARQUET}")
+
+    def batch_part(self, segments: int) -> str:
+        """A fresh name for a part file holding the final rows of several segments."""
+        return posixpath.join(self.measurements, f"{PART_PREFIX}batch-n{segments}-{token()}{PARQUET}")
 
     def block(self, number: int) -> str:
         """A fresh name for compacted block ``number``; the token keeps two compactors apart."""

@@ -7,6 +7,8 @@ own from the same root string.
 
 from __future__ import annotations
 
+import posixpath
+
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -64,7 +66,7 @@ class SearchFiles:
 
     @property
     def journal_dir(self) -> str:
-        """Reserved for the head's journal; this class never writes there."""
+        """The head's own files (its snapshot, later its journal); written only by the head."""
         return self.layout.journal
 
     def exists(self) -> bool:
@@ -83,6 +85,22 @@ class SearchFiles:
         """The stored spec text, or None if none was written."""
         data = self._volume.read_bytes(self.layout.spec)
         return None if data is None else data.decode("utf-8")
+
+    # -- the head's state -----------------------------------------------------------------
+
+    def write_head_state(self, name: str, text: str) -> None:
+        """Replace the head's state file ``journal/<name>`` atomically (the head's snapshot)."""
+        self._volume.write_bytes(self._head_path(name), text.encode("utf-8"))
+
+    def read_head_state(self, name: str) -> str | None:
+        """The head's state file ``journal/<name>``, or None if the head never wrote it."""
+        data = self._volume.read_bytes(self._head_path(name))
+        return None if data is None else data.decode("utf-8")
+
+    def _head_path(self, name: str) -> str:
+        if "/" in name or name.startswith("."):
+            raise ValueError(f"a head state name is a plain file name (got {name!r})")
+        return posixpath.join(self.layout.journal, name)
 
     # -- checkpoints ----------------------------------------------------------------------
 

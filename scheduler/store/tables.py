@@ -63,7 +63,11 @@ def _conforms(table: pa.Table, schema: pa.Schema, path: str) -> pa.Table:
 
 
 def write_measurements(volume: Volume, layout: SearchLayout, rows: Sequence[Mapping[str, Any]]) -> str:
-    """Write ``rows`` (one trial segment's measurements) as one new part file; return its path."""
+    """Write ``rows`` as one new part file; return its path.
+
+    A worker writes one trial segment's measurements per call; the head writes the final rows
+    of many segments at once (each loop of the head is one part file, not one per segment).
+    """
     table = rows_to_table(rows, MEASUREMENTS_SCHEMA)
     if table.num_rows == 0:
         raise InvalidRows("no rows to write")
@@ -71,12 +75,7 @@ def write_measurements(volume: Volume, layout: SearchLayout, rows: Sequence[Mapp
         (row["trial"], row["rung"], row["attempt"])
         for row in table.select(["trial", "rung", "attempt"]).to_pylist()
     }
-    if len(segments) != 1:
-        raise InvalidRows(
-            f"one write holds one trial segment (trial, rung, attempt); got {sorted(segments)[:4]}",
-            column="trial",
-        )
-    path = layout.part(*segments.pop())
+    path = layout.part(*segments.pop()) if len(segments) == 1 else layout.batch_part(len(segments))
     volume.write_table(path, table)
     return path
 

@@ -108,9 +108,15 @@ def test_missing_required_column_is_named(files: SearchFiles) -> None:
     assert caught.value.column == "budget"
 
 
-def test_one_write_holds_one_segment(files: SearchFiles) -> None:
-    with pytest.raises(InvalidRows, match="one trial segment"):
-        files.write_measurements([measurement(), measurement(attempt=1)])
+def test_a_write_of_several_segments_is_one_batch_part(files: SearchFiles) -> None:
+    path = files.write_measurements([measurement(), measurement(attempt=1)])
+    assert path.rsplit("/", 1)[1].startswith("part-batch-n2-")
+    assert len(files.read_measurements()) == 2
+    single = files.write_measurements([measurement(attempt=2)])
+    assert "-a2-" in single.rsplit("/", 1)[1]
+
+
+def test_an_empty_write_is_refused(files: SearchFiles) -> None:
     with pytest.raises(InvalidRows, match="no rows"):
         files.write_measurements([])
     assert files.read_measurements().empty

@@ -1,0 +1,287 @@
+"""The ``rungway`` command: run a search, run the demo, show and export results.
+
+Exit status: 0 done, 2 a mistake in the user's input (the message says which field or file
+and what would be valid; no traceback), 3 the search paused on a storage fault, 130 stopped
+by Ctrl-C (everything written so far is kept; the same command resumes).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import math
+import os
+import signal
+import sys
+from pathlib import Path
+from typing import Any
+
+from rungway.scheduler.core.errors import RungwayError, SpecError
+
+__all__ = ["main"]
+
+DEFAULT_STORE = "rungway-store"
+EXIT_USER_ERROR = 2
+EXIT_STORAGE = 3
+EXIT_INTERRUPTED = 130
+
+
+def _store_default() -> str:
+    return os.environ.get("RUNGWAY_STORE", DEFAULT_STORE)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="rungway", description="Trial scheduling for a shared CPU cluster.")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def add_store(p: argparse.ArgumentParser) -> None:
+        p.add_argument("--store", default=_store_default(), help="store root: a folder or a pyarrow URI (default: ./rungway-store, or $RUNGWAY_STORE)")
+
+    def add_ray(p: argparse.ArgumentParser) -> None:
+        p.add_argument("--address", help="join this Ray cluster (host:port); default: start an embedded local Ray")
+        p.add_argument("--cpus", type=int, help="CPUs for the embedded local Ray (default: all of this machine)")
+        p.add_argument("--json", action="store_true", help="print the final summary as JSON")
+        p.add_argument("--no-probe", action="store_true", help="skip trying the objective once here before the search starts")
+
+    run = sub.add_parser("run", help="run a search to completion in the foreground (resumes if it was stopped)")
+    run.add_argument("spec", help="the search's spec file (TOML)")
+    add_store(run)
+    add_ray(run)
+
+    demo = sub.add_parser("demo", help="run the bundled demo search on the embedded local Ray")
+    demo.add_argument("--which", choices=["digits-mlp", "boosting"], default="digits-mlp")
+    add_store(demo)
+    add_ray(demo)
+
+    show = sub.add_parser("show", help="leaderboard, rung occupancy and best so far of a search")
+    show.add_argument("name")
+    show.add_argument("--top", type=int, default=10)
+    show.add_argument("--json", action="store_true")
+    add_store(show)
+
+    listing = sub.add_parser("list", help="the searches in a store")
+    listing.add_argument("--json", action="store_true")
+    add_store(listing)
+
+    export = sub.add_parser("export", help="write a search's trials or measurements to a file")
+    export.add_argument("name")
+    export.add_argument("--what", choices=["trials", "measurements", "failures"], default="trials")
+    export.add_argument("--out", required=True, help="output file; the format follows its suffix (.csv, .parquet, .json)")
+    add_store(export)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
+    try:
+        return COMMANDS[args.command](args)
+    except RungwayError as exc:
+        if isinstance(exc, SpecError):
+            print(f"error: {exc}", file=sys.stderr)
+            return EXIT_USER_ERROR
+        from rungway.scheduler.store import StorageError
+
+        if isinstance(exc, StorageError):
+            print(f"storage error: {exc}", file=sys.stderr)
+            return EXIT_STORAGE
+        print(f"error: {exc}", file=sys.stderr)
+        return 1
+
+
+# ---- run ------------------------------------------------------------------------------------
+
+
+def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
+    from rungway.scheduler.spec import check_spec, parse_spec
+
+    spec = parse_spec(spec_text, source)
+    check_spec(spec)
+    if not args.no_probe:
+        _probe(spec)
+    from rungway.scheduler.cli.progress import ProgressView
+    from rungway.scheduler.head.cluster import ray_session
+    from rungway.scheduler.head.driver import SearchDriver
+    from rungway.scheduler.head.executor import RayExecutor
+
+    store_root = _absolute_root(args.store)
+    stop = {"asked": False}
+
+    def on_sigint(signum: int, frame: Any) -> None:
+        if stop["asked"]:
+            raise KeyboardInterrupt
+        stop["asked"] = True
+        print("\nstopping: requeueing running segments and writing state (Ctrl-C again to quit at once)", file=sys.stderr)
+
+    previous = signal.signal(signal.SIGINT, on_sigint)
+    try:
+        with ray_session(args.address, args.cpus):
+            driver = SearchDriver(spec, spec_text, store_root, RayExecutor(), progress=ProgressView())
+            report = driver.run(lambda: stop["asked"])
+    finally:
+        signal.signal(signal.SIGINT, previous)
+    stats = report.statistics
+    summary = {
+        "search": spec.name,
+        "finished": report.finished,
+        "interrupted": report.interrupted,
+        "paused": report.paused_reason,
+        "elapsed_seconds": round(report.elapsed, 3),
+        "segments": report.segments,
+        "trials": stats["trials"],
+        "best": _best(driver),
+        "store": os.path.join(store_root, "searches", spec.name) if "://" not in store_root else f"{store_root}/searches/{spec.name}",
+    }
+    if args.json:
+        print(json.dumps(summary, indent=2, default=_plain))
+    else:
+        _print_summary(summary, spec.metric)
+    if report.paused_reason:
+        print(f"paused: {report.paused_reason}; fix it, then run the same command to resume", file=sys.stderr)
+        return EXIT_STORAGE
+    if report.interrupted:
+        return EXIT_INTERRUPTED
+    return 0
+
+
+def _probe(spec: Any) -> None:
+    """Try the objective once in this process before anything is written (workers/probe.py)."""
+    import numpy as np
+
+    from rungway.workers.objective import load_objective
+    from rungway.workers.probe import probe_objective
+
+    config = spec.space().sample(np.random.default_rng(spec.seed + 1))
+    probe_objective(load_objective(spec.objective), config, spec.ladder.min, spec.metric)
+
+
+def _absolute_root(root: str) -> str:
+    return root if "://" in root else str(Path(root).resolve())
+
+
+def _best(driver: Any) -> dict[str, Any] | None:
+    board = driver.core.leaderboard(1)
+    if not board or board[0].loss is None or math.isinf(board[0].loss):
+        return None
+    t = board[0]
+    return {"trial": t.id, "value": driver.core.value_of(t.loss), "budget": t.budget, "config": t.config}
+
+
+def _plain(value: Any) -> Any:
+    if hasattr(value, "item"):
+        return value.item()
+    return str(value)
+
+
+def _print_summary(summary: dict[str, Any], metric: str) -> None:
+    state = "finished" if summary["finished"] else "stopped" if summary["interrupted"] else "paused"
+    print(f"search {summary['search']} {state} after {summary['elapsed_seconds']:.1f}s: {summary['trials']} trials, {summary['segments']} segments")
+    best = summary["best"]
+    if best:
+        print(f"best {metric}: {best['value']:.6g} (trial {best['trial']}, budget {best['budget']})")
+        print("best configuration: " + json.dumps(best["config"], default=_plain))
+    print(f"results: {summary['store']}  (trials.parquet, measurements/)")
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    path = Path(args.spec)
+    try:
+        text = path.read_text()
+    except OSError as exc:
+        raise SpecError(f"cannot read the spec file: {exc.strerror}", field=str(path)) from None
+    return _run_spec(text, str(path), args)
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from rungway.workers import demo
+
+    text = demo.DEMO_SPEC if args.which == "digits-mlp" else demo.BOOSTING_SPEC
+    print(f"rungway demo: tuning the {args.which} example (see examples/README.md) on the embedded local Ray", file=sys.stderr)
+    return _run_spec(text, f"<demo {args.which}>", args)
+
+
+# ---- reading --------------------------------------------------------------------------------
+
+
+def _load_search(store_root: str, name: str):  # type: ignore[no-untyped-def]
+    import numpy as np
+
+    from rungway.scheduler.core.search import SearchCore
+    from rungway.scheduler.head.driver import HEAD_STATE
+    from rungway.scheduler.spec import parse_spec
+    from rungway.scheduler.store import Store
+
+    files = Store(_absolute_root(store_root)).search(name)
+    text = files.read_spec()
+    state = files.read_head_state(HEAD_STATE)
+    if text is None or state is None:
+        known = ", ".join(Store(_absolute_root(store_root)).list_searches()) or "none"
+        raise SpecError(f"no search named {name!r} in {store_root} (searches there: {known})", field="name")
+    spec = parse_spec(text, f"{name}/spec.toml")
+    data = json.loads(state)
+    core = SearchCore.restore(data["core"], spec.make_sampler(np.random.default_rng(spec.seed)))
+    return spec, files, core, data.get("meta", {})
+
+
+def cmd_show(args: argparse.Namespace) -> int:
+    spec, files, core, meta = _load_search(args.store, args.name)
+    stats = core.statistics()
+    board = [
+        {"trial": t.id, "state": t.state, "rung": t.rung, "budget": t.budget,
+         "value": None if t.loss is None else core.value_of(t.loss), "config": t.config}
+        for t in core.leaderboard(args.top)
+    ]
+    if args.json:
+        print(json.dumps({"search": spec.name, "metric": spec.metric, "direction": spec.direction,
+                          "statistics": stats, "leaderboard": board, "meta": meta}, indent=2, default=_plain))
+        return 0
+    states = stats["states"]
+    print(f"search {spec.name}: {stats['trials']} trials ({', '.join(f'{k} {v}' for k, v in states.items() if v)})")
+    print(f"metric {spec.metric} ({spec.direction}); {spec.ladder.unit} from {spec.ladder.min} to {spec.ladder.max}, eta {spec.ladder.eta}, mode {spec.ladder.mode}")
+    for index, bracket in enumerate(stats["brackets"]):
+        label = f"bracket {index}: " if len(stats["brackets"]) > 1 else ""
+        print("  " + label + " | ".join(f"{r['budget']:g}: {r['results']} results, {r['promoted']} promoted" for r in bracket["rungs"]))
+    print(f"\n{'rank':>4} {'trial':>6} {'state':<9} {spec.ladder.unit:>8} {spec.metric:>12}  configuration")
+    for rank, row in enumerate(board, 1):
+        value = "n/a" if row["value"] is None else f"{row['value']:.6g}"
+        print(f"{rank:>4} {row['trial']:>6} {row['state']:<9} {row['budget']:>8g} {value:>12}  {json.dumps(row['config'], default=_plain)}")
+    return 0
+
+
+def cmd_list(args: argparse.Namespace) -> int:
+    from rungway.scheduler.store import Store
+
+    names = Store(_absolute_root(args.store)).list_searches()
+    if args.json:
+        print(json.dumps(names))
+    else:
+        print("\n".join(names) if names else f"no searches in {args.store}")
+    return 0
+
+
+def cmd_export(args: argparse.Namespace) -> int:
+    from rungway.scheduler.store import Store
+
+    files = Store(_absolute_root(args.store)).search(args.name)
+    if files.read_spec() is None:
+        raise SpecError(f"no search named {args.name!r} in {args.store}", field="name")
+    frame = {"trials": files.read_trials, "measurements": files.read_measurements, "failures": files.read_failures}[args.what]()
+    out = Path(args.out)
+    suffix = out.suffix.lower()
+    if suffix == ".csv":
+        frame.to_csv(out, index=False)
+    elif suffix == ".parquet":
+        frame.to_parquet(out, index=False)
+    elif suffix == ".json":
+        frame.to_json(out, orient="records", date_format="iso", indent=1)
+    else:
+        raise SpecError(f"unknown output format {suffix or '(none)'!r}: use .csv, .parquet or .json", field="--out")
+    print(f"wrote {len(frame)} {args.what} rows to {out}")
+    return 0
+
+
+COMMANDS = {"run": cmd_run, "demo": cmd_demo, "show": cmd_show, "list": cmd_list, "export": cmd_export}
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,59 @@
+"""Deterministic objectives for the execution tests (imported by Ray workers by path)."""
+
+from __future__ import annotations
+
+import math
+import os
+import time
+
+
+def chain(x: float, budget: int) -> float:
+    """A value that depends on every unit of budget in order (like training steps do)."""
+    state = x
+    for step in range(budget):
+        state = math.sin(state * 1.7 + step) + 0.01 * step
+    return state
+
+
+def value_at(x: float, budget: int) -> float:
+    """What the objective reports at ``budget``: closer to (x - 0.3)^2 as budget grows."""
+    return (x - 0.3) ** 2 + chain(x, budget) / (budget + 1)
+
+
+def resumable(ctx):
+    """Resumable: keeps the chain's state in its checkpoint; steps one budget unit at a time."""
+    x = ctx.config["x"]
+    state = ctx.state if ctx.state is not None else {"value": x, "step": 0}
+    assert state["step"] == ctx.start, (state, ctx.start)
+    for step in range(ctx.start, ctx.budget):
+        state = {"value": math.sin(state["value"] * 1.7 + step) + 0.01 * step, "step": step + 1}
+        ctx.save(state, step + 1)
+        ctx.report(step + 1, loss=(x - 0.3) ** 2 + state["value"] / (step + 2))
+    return {"loss": (x - 0.3) ** 2 + state["value"] / (ctx.budget + 1)}
+
+
+def plain(config, budget):
+    return {"loss": value_at(config["x"], budget)}
+
+
+def noop(config, budget):
+    return 0.0
+
+
+def sleepy(config, budget):
+    time.sleep(float(os.environ.get("RUNGWAY_TEST_SLEEP", "0.2")))
+    return {"loss": value_at(config["x"], budget)}
+
+
+def flaky(config, budget):
+    """Raises on the first attempt of every third trial (by x), succeeds otherwise."""
+    if int(config["x"] * 1000) % 3 == 0 and budget == 1:
+        marker = f"/tmp/rungway-flaky-{int(config['x'] * 1e9)}"
+        if not os.path.exists(marker):
+            open(marker, "w").close()
+            raise RuntimeError("flaky failure")
+    return {"loss": value_at(config["x"], budget)}
+
+
+def always_fails(config, budget):
+    raise ValueError("this objective always fails")

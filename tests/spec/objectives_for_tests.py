@@ -1,0 +1,51 @@
+"""Objectives for the spec and objective-loading tests (imported by path from spec files)."""
+
+from __future__ import annotations
+
+from typing import Any
+
+NOT_A_FUNCTION = 42
+
+
+def plain(config: dict[str, Any], budget: int) -> float:
+    return float(config.get("lr", 0.0)) * budget
+
+
+def plain_with_default(config: dict[str, Any], budget: int, verbose: bool = False) -> float:
+    return 0.5
+
+
+def resumable(ctx: Any) -> None:
+    ctx.report(ctx.budget, accuracy=0.5)
+
+
+def resumable_with_options(ctx: Any, *, log: bool = False) -> dict[str, float]:
+    return {"accuracy": 0.5}
+
+
+def three(config: dict[str, Any], budget: int, extra: int) -> float:
+    return 0.0
+
+
+def none() -> float:
+    return 0.0
+
+
+def keyword_only(config: dict[str, Any], budget: int, *, device: str) -> float:
+    return 0.0
+
+
+async def asynchronous(config: dict[str, Any], budget: int) -> float:
+    return 0.0
+
+
+def generator(ctx: Any):  # noqa: ANN201 - deliberately a generator
+    yield 0.0
+
+
+class CallableObject:
+    def __call__(self, config: dict[str, Any], budget: int) -> float:
+        return 1.0
+
+
+callable_object = CallableObject()
