@@ -49,3 +49,19 @@ class CallableObject:
 
 
 callable_object = CallableObject()
+
+
+def returns_string(config: dict[str, Any], budget: int) -> str:
+    return "0.93"
+
+
+def returns_nan(config: dict[str, Any], budget: int) -> float:
+    return float("nan")
+
+
+def raises(config: dict[str, Any], budget: int) -> float:
+    raise RuntimeError("the data folder is missing")
+
+
+def wrong_metric(config: dict[str, Any], budget: int) -> dict[str, float]:
+    return {"acc": 0.9}
