@@ -64,6 +64,10 @@ def build_parser() -> argparse.ArgumentParser:
     listing.add_argument("--json", action="store_true")
     add_store(listing)
 
+    from rungway.scheduler.cli import plan_cmd
+
+    plan_cmd.add_parser(sub)
+
     export = sub.add_parser("export", help="write a search's trials or measurements to a file")
     export.add_argument("name")
     export.add_argument("--what", choices=["trials", "measurements", "failures"], default="trials")
@@ -281,7 +285,13 @@ def cmd_export(args: argparse.Namespace) -> int:
     return 0
 
 
-COMMANDS = {"run": cmd_run, "demo": cmd_demo, "show": cmd_show, "list": cmd_list, "export": cmd_export}
+def cmd_plan(args: argparse.Namespace) -> int:
+    from rungway.scheduler.cli import plan_cmd
+
+    return plan_cmd.run(args)
+
+
+COMMANDS = {"run": cmd_run, "demo": cmd_demo, "show": cmd_show, "list": cmd_list, "export": cmd_export, "plan": cmd_plan}
 
 if __name__ == "__main__":
     sys.exit(main())
