@@ -8,6 +8,7 @@ on the worker side, so the actor is never on the per-segment hot path of the pro
 
 from __future__ import annotations
 
+import threading
 import time
 from typing import Any
 
@@ -24,19 +25,22 @@ class Relay:
 
     def __init__(self) -> None:
         self._milestones: list[tuple[int, int, int, float]] = []
-        self._beats: dict[tuple[int, int], tuple[float, Budget]] = {}
+        self._beats: dict[tuple[int, int], tuple[Budget, str]] = {}
         self._verdicts: dict[tuple[int, int, int], bool] = {}
         self._yields: set[tuple[int, int]] = set()
 
     def milestone(self, trial: int, attempt: int, rung: int, value: float) -> None:
         self._milestones.append((trial, attempt, rung, value))
-        self._beats[(trial, attempt)] = (time.time(), -1)
 
     def verdict(self, trial: int, attempt: int, rung: int) -> bool | None:
         return self._verdicts.pop((trial, attempt, rung), None)
 
-    def beat(self, trial: int, attempt: int, budget: Budget) -> None:
-        self._beats[(trial, attempt)] = (time.time(), budget)
+    def beat(self, trial: int, attempt: int, budget: Budget, node: str = "") -> None:
+        """The segment is alive; ``budget`` is how far it got (-1: unknown), ``node`` where."""
+        previous = self._beats.get((trial, attempt))
+        if budget < 0 and previous is not None:
+            budget = previous[0]
+        self._beats[(trial, attempt)] = (budget, node)
 
     def should_yield(self, trial: int, attempt: int) -> bool:
         return (trial, attempt) in self._yields
@@ -58,14 +62,58 @@ class Relay:
         self._yields.discard((trial, attempt))
 
 
-class ActorLink:
-    """The worker side of :class:`Relay` (implements ``runner.HeadLink``)."""
+class _Beater:
+    """One daemon thread per worker process beats for whatever segment runs there now."""
 
-    def __init__(self, relay: Any, beat_seconds: float = 2.0, poll_seconds: float = 0.02) -> None:
+    def __init__(self, beat_seconds: float) -> None:
+        self.beat_seconds = beat_seconds
+        self.current: tuple[Any, int, int, str] | None = None
+        self.lock = threading.Lock()
+        self.thread = threading.Thread(target=self._loop, name="rungway-beat", daemon=True)
+        self.thread.start()
+
+    def _loop(self) -> None:
+        while True:
+            time.sleep(self.beat_seconds)
+            with self.lock:
+                current = self.current
+            if current is not None:
+                relay, trial, attempt, node = current
+                try:
+                    relay.beat.remote(trial, attempt, -1, node)
+                except Exception:  # the head is gone; the segment finishes on its own
+                    pass
+
+
+_beater: _Beater | None = None
+
+
+class ActorLink:
+    """The worker side of :class:`Relay` (implements ``runner.HeadLink``).
+
+    While a segment runs, the process's beat thread tells the head every ``beat_seconds``
+    that it is alive, so that a plain objective that never reports is still seen; reports
+    add how far it got.
+    """
+
+    def __init__(self, relay: Any, node: str = "", beat_seconds: float = 2.0, poll_seconds: float = 0.02) -> None:
         self._relay = relay
+        self._node = node
         self._beat_seconds = beat_seconds
         self._poll_seconds = poll_seconds
         self._last_beat = 0.0
+
+    def start(self, trial: int, attempt: int) -> None:
+        global _beater
+        if _beater is None:
+            _beater = _Beater(self._beat_seconds)
+        with _beater.lock:
+            _beater.current = (self._relay, trial, attempt, self._node)
+
+    def stop(self) -> None:
+        if _beater is not None:
+            with _beater.lock:
+                _beater.current = None
 
     def milestone(self, trial: int, attempt: int, rung: int, value: float) -> bool:
         ray.get(self._relay.milestone.remote(trial, attempt, rung, value))
@@ -82,6 +130,6 @@ class ActorLink:
 
     def beat(self, trial: int, attempt: int, budget: Budget) -> None:
         now = time.monotonic()
-        if now - self._last_beat >= self._beat_seconds:
+        if now - self._last_beat >= self._beat_seconds / 2:
             self._last_beat = now
-            self._relay.beat.remote(trial, attempt, budget)  # fire and forget
+            self._relay.beat.remote(trial, attempt, budget, self._node)  # fire and forget

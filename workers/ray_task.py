@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 from typing import Any
 
 import ray
@@ -12,11 +13,19 @@ from .runner import SegmentOrder, SegmentSummary, node_name, run_segment
 __all__ = ["segment_task"]
 
 
+@functools.lru_cache(maxsize=16)
+def _relay(name: str) -> Any:
+    return ray.get_actor(name)
+
+
 @ray.remote(max_retries=0, retry_exceptions=False)
-def segment_task(order: SegmentOrder, relay: Any = None) -> SegmentSummary:
-    return run_segment(order, ActorLink(relay) if relay is not None else None, node=ray_node_name())
-
-
-def ray_node_name() -> str:
-    """Host name plus the start of Ray's node id: several Ray nodes can share one host."""
-    return f"{node_name()}/{ray.get_runtime_context().get_node_id()[:8]}"
+def segment_task(order: SegmentOrder, relay_name: str | None = None) -> SegmentSummary:
+    node_id = ray.get_runtime_context().get_node_id()
+    link = ActorLink(_relay(relay_name), node=node_id) if relay_name is not None else None
+    if link is not None:
+        link.start(order.trial, order.attempt)
+    try:
+        return run_segment(order, link, node=f"{node_name()}/{node_id[:8]}")
+    finally:
+        if link is not None:
+            link.stop()

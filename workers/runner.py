@@ -145,6 +145,11 @@ def run_segment(
                 summary.checkpoint_budget = start
             if loaded is not None and loaded.skipped:
                 summary.skipped_checkpoints = [f"{path}: {why}" for path, why in loaded.skipped]
+            if loaded is None and order.start_budget:
+                summary.skipped_checkpoints = [
+                    f"trial {order.trial} had no readable checkpoint: restarted from budget 0 "
+                    f"instead of {order.start_budget} (see the store's warnings for what was damaged)"
+                ]
     except StorageError as exc:
         return _storage_fault(summary, exc, clock, cpu_start)
     except Exception as exc:  # the objective does not import on this worker, or its state does not unpickle

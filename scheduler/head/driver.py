@@ -2,12 +2,21 @@
 
 Theory of operation. The driver asks the core for work whenever a slot is free, submits each
 segment to the executor, and turns every completion into exactly one core event (a result,
-a loss, a crash). It owns the search's wall-clock limits, the periodic writes of the trials
-table and of the core's snapshot, and the progress callback. The core never learns about
+a loss, a crash). Every event is appended to the journal, durably, before the driver acts on
+it: segments are journaled before they are submitted, results after their measurement rows
+are in the store and before the ladder sees them. The driver also owns the search's
+wall-clock limits, node health (dead nodes, missed heartbeats, hangs, nodes that keep
+failing), the periodic snapshot, and the progress callback. The core never learns about
 time, Ray or files; the executor never learns about ladders.
 
-Resuming: the snapshot in the store is restored, and every segment that was running when
-the head stopped is requeued (its worker's result, if it ever comes, is refused as stale).
+Restarting: the last snapshot is restored and the journal's later entries are replayed into
+the core, which then stands exactly where it stood. A segment that was running when the head
+stopped is settled from the store: if its result rows are there, the result is accepted
+(nothing is redone); otherwise it is requeued from its checkpoint. A late answer from a
+segment the head gave up on names an attempt the core no longer runs and is dropped.
+
+Storage faults end the run with a message saying what to fix (exit status 3 from the
+command); running it again, or ``--retry-storage``, resumes from the store.
 """
 
 from __future__ import annotations
@@ -16,8 +25,10 @@ import json
 import logging
 import math
 import time
+from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -27,11 +38,13 @@ from rungway.scheduler.core.estimate import planned_budget
 from rungway.scheduler.core.events import Continue, Drained, Failed, Segment
 from rungway.scheduler.core.search import SearchCore
 from rungway.scheduler.spec import SearchSpec
+from rungway.scheduler.store import StorageError
 from rungway.workers.runner import SegmentOrder, SegmentSummary
 
 from .executor import Completion, Executor
+from .journal import Journal
 
-__all__ = ["SearchDriver", "RunReport", "HEAD_STATE"]
+__all__ = ["SearchDriver", "RunReport", "HEAD_STATE", "HealthSettings"]
 
 log = logging.getLogger("rungway.head")
 
@@ -50,6 +63,17 @@ class RunReport:
     statistics: dict[str, Any] = field(default_factory=dict)
 
 
+@dataclass(frozen=True)
+class HealthSettings:
+    """How the head judges running segments and nodes (seconds unless said otherwise)."""
+
+    check_every: float = 1.0
+    beat_timeout: float = 15.0  # a started segment silent this long is lost
+    node_failure_limit: int = 3  # this many lost or crashed segments on a node within the window...
+    node_failure_window: float = 300.0
+    node_quarantine: float = 600.0  # ...keep new segments off it this long
+
+
 @dataclass(slots=True)
 class _Running:
     trial: int
@@ -58,6 +82,10 @@ class _Running:
     start_budget: float
     target_budget: float
     submitted: float
+    node: str = ""
+    last_beat: float | None = None
+    last_progress: float = 0.0
+    progress: float = -1.0
 
 
 class SearchDriver:
@@ -76,6 +104,7 @@ class SearchDriver:
         progress_seconds: float = 0.5,
         prefetch: float = 1.0,
         flush_seconds: float = 0.05,
+        health: HealthSettings = HealthSettings(),
     ) -> None:
         from rungway.scheduler.store import Store
 
@@ -93,49 +122,169 @@ class SearchDriver:
         self.prefetch = prefetch
         # Finished segments' results are gathered for up to this long and written as one file.
         self.flush_seconds = flush_seconds
+        self.health = health
         self.plan = spec.plan()
-        self.core = self._restore_or_start()
         self.running: dict[tuple[int, int], _Running] = {}
-        self.budget_done = self._meta.get("budget_done", 0.0)
-        self.cpu_seconds = self._meta.get("cpu_seconds", 0.0)
-        self.elapsed_before = self._meta.get("elapsed", 0.0)
-        self.segments = self._meta.get("segments", 0)
+        self.budget_done = 0.0
+        self.cpu_seconds = 0.0
+        self.elapsed_before = 0.0
+        self.segments = 0
+        self.replayed = 0
+        self.replay_seconds = 0.0
+        self.node_failures: dict[str, deque[float]] = {}
+        self.quarantined: dict[str, float] = {}
         self.planned = planned_budget(self.plan)
+        self._uncommitted: list[dict[str, Any]] = []
+        self._last_drain = 0.0
+        self._last_fill = 0.0
+        self._segments_this_run = 0
+        self.core = self._restore_or_start()
 
     # ---- state in the store ------------------------------------------------------------
+
+    def _journal_dir(self) -> Path:
+        if "://" in self.store_root and not self.store_root.startswith("file://"):
+            raise SpecError(
+                f"the head's journal needs a POSIX path (local disk or NFS), not {self.store_root}; "
+                "mount the store and pass its path",
+                field="--store",
+            )
+        return Path(self.files.journal_dir.removeprefix("file://"))
 
     def _restore_or_start(self) -> SearchCore:
         stored_spec = self.files.read_spec()
         sampler = self.spec.make_sampler(np.random.default_rng(self.spec.seed))
-        state = self.files.read_head_state(HEAD_STATE)
-        self._meta: dict[str, Any] = {}
         if stored_spec is not None and stored_spec != self.spec_text:
             raise SpecError(
                 f"a search named {self.spec.name!r} already exists in {self.store_root} with a different "
                 "spec; give this one another name (or delete the old search's folder)",
                 field="name",
             )
+        state = self.files.read_head_state(HEAD_STATE)
+        self.journal = Journal(self._journal_dir())
         if state is None:
-            self.files.write_spec(self.spec_text)
-            return SearchCore(self.plan, sampler)
-        data = json.loads(state)
-        self._meta = data.get("meta", {})
-        core = SearchCore.restore(data["core"], sampler)
-        for view in core.trials():
-            if view.state == "active":  # its worker belonged to the previous head
-                core.lost(view.id, view.attempt)
+            if stored_spec is None:
+                self.files.write_spec(self.spec_text)
+            core = SearchCore(self.plan, sampler)
+            covered = 0
+        else:
+            data = json.loads(state)
+            meta = data.get("meta", {})
+            self.budget_done = meta.get("budget_done", 0.0)
+            self.cpu_seconds = meta.get("cpu_seconds", 0.0)
+            self.elapsed_before = meta.get("elapsed", 0.0)
+            self.segments = meta.get("segments", 0)
+            covered = data.get("journal_seq", 0)
+            core = SearchCore.restore(data["core"], sampler)
+        self.core = core
+        started = time.perf_counter()
+        for entry in self.journal.entries_after(covered):
+            self._replay(entry)
+            self.replayed += 1
+        self.replay_seconds = time.perf_counter() - started
+        if self.replayed:
+            log.info("replayed %d journal entries in %.3fs", self.replayed, self.replay_seconds)
+        self._settle_orphans()
         return core
 
+    def _replay(self, entry: dict[str, Any]) -> None:
+        if entry["e"] == "seg":
+            out = self.core.ask()
+            got = (out.trial, out.attempt, out.rung) if isinstance(out, Segment) else None
+            if got != (entry["t"], entry["a"], entry["r"]):
+                raise StorageError(
+                    f"the journal in {self.journal.directory} does not match this search's decisions "
+                    f"(entry {entry['n']}: expected segment {entry['t']}/{entry['a']}/{entry['r']}, the core "
+                    f"gave {got}); was the spec or rungway changed between runs?",
+                    path=str(self.journal.directory),
+                )
+            return
+        self._apply_entry(entry)
+
+    def _log(self, entry: dict[str, Any]) -> Any:
+        """Apply one event now and queue its journal entry; ``_commit`` makes the queue durable
+        before the head does anything outside itself that depends on it."""
+        self._uncommitted.append(entry)
+        return self._apply_entry(entry)
+
+    def _commit(self) -> None:
+        if self._uncommitted:
+            entries, self._uncommitted = self._uncommitted, []
+            self.journal.append(entries)
+
+    def _apply_entry(self, entry: dict[str, Any]) -> Any:
+        """Apply one journaled event to the core (live and in replay alike)."""
+        core, kind = self.core, entry["e"]
+        self.cpu_seconds += entry.get("cpu", 0.0)
+        self.budget_done += entry.get("bud", 0.0)
+        self.elapsed_before = max(self.elapsed_before, entry.get("el", 0.0)) if not hasattr(self, "_started") else self.elapsed_before
+        if kind in ("rep", "lost", "crash", "yield", "done"):
+            self.segments += 1
+        try:
+            if kind == "rep":
+                return core.report(entry["t"], entry["a"], entry["r"], float(entry["v"]))
+            if kind == "lost":
+                return core.lost(entry["t"], entry["a"])
+            if kind == "crash":
+                return core.crashed(entry["t"], entry["a"], entry.get("why", ""))
+            if kind == "yield":
+                return core.yielded(entry["t"], entry["a"])
+            if kind == "cancel":
+                return core.cancel(entry["t"])
+            if kind == "stop":
+                return core.stop_admitting()
+            if kind == "done":  # stopping form: the segment ended after its rung results
+                return None
+        except RejectedEvent as exc:  # refused when it happened too; the core is right
+            log.info("journal entry %s refused: %s", entry.get("n"), exc)
+            return None
+        raise StorageError(f"unknown journal entry kind {kind!r} (entry {entry.get('n')})", path=str(self.journal.directory))
+
+    def _settle_orphans(self) -> None:
+        """Segments running when the previous head stopped: accept results already in the
+        store, requeue the rest from their checkpoints."""
+        orphans = [t for t in self.core.trials() if t.state == "active"]
+        if not orphans:
+            return
+        finals: dict[tuple[int, int, int], float] = {}
+        frame = self.files.read_measurements()
+        if not frame.empty:
+            rows = frame[(frame["final"]) & (frame["metric"] == self.spec.metric)]
+            for row in rows.itertuples():
+                finals[(int(row.trial), int(row.attempt), int(row.rung))] = float(row.value)
+        entries = []
+        for view in orphans:
+            rung = view.rung
+            if self.plan.stopping:
+                while (view.id, view.attempt, rung) in finals:
+                    entries.append({"e": "rep", "t": view.id, "a": view.attempt, "r": rung, "v": finals[(view.id, view.attempt, rung)]})
+                    rung += 1
+                if entries and entries[-1]["t"] == view.id and rung > len(self.plan.brackets()[view.bracket].ladder.budgets) - 1:
+                    continue
+            elif (view.id, view.attempt, rung) in finals:
+                entries.append({"e": "rep", "t": view.id, "a": view.attempt, "r": rung, "v": finals[(view.id, view.attempt, rung)]})
+                continue
+            entries.append({"e": "lost", "t": view.id, "a": view.attempt})
+        for entry in entries:
+            self._log(entry)
+        self._commit()
+        log.info("settled %d segments of the previous head: %d results kept from the store",
+                 len(orphans), sum(1 for e in entries if e["e"] == "rep"))
+
     def persist(self) -> None:
-        """Write the core's snapshot and the trials table (both atomically)."""
+        """Write the core's snapshot and the trials table (both atomically), then let the
+        journal drop what the snapshot covers."""
         meta = {
             "budget_done": self.budget_done,
             "cpu_seconds": self.cpu_seconds,
             "elapsed": self.elapsed,
             "segments": self.segments,
         }
-        payload = json.dumps({"meta": meta, "core": self.core.snapshot()}, separators=(",", ":"))
+        self._commit()
+        seq = self.journal.seq
+        payload = json.dumps({"meta": meta, "journal_seq": seq, "core": self.core.snapshot()}, separators=(",", ":"))
         self.files.write_head_state(HEAD_STATE, payload)
+        self.journal.rotate(seq)
         self.write_trials()
 
     def write_trials(self) -> None:
@@ -163,7 +312,7 @@ class SearchDriver:
 
     def run(self, should_stop: Callable[[], bool] = lambda: False) -> RunReport:
         self._started = self.clock()
-        last_persist = last_progress = self._started
+        last_persist = last_progress = last_health = self._started
         report = RunReport(finished=False)
         drained = False
         pending: list[Completion] = []  # finished segments whose results wait for the next write
@@ -174,7 +323,7 @@ class SearchDriver:
                     report.interrupted = True
                     break
                 self._check_limits()
-                drained = self._fill() or drained
+                drained = self._fill(self.clock()) or drained
                 if drained and not self.running and not pending:
                     report.finished = True
                     break
@@ -187,18 +336,16 @@ class SearchDriver:
                     or len(pending) >= 256
                     or self.executor.in_flight() == 0
                 ):
-                    # One part file for the rung results gathered, written before any is accepted.
-                    self._write_final_rows(pending)
-                    for completion in pending:
-                        reason = self._complete(completion)
-                        if reason:
-                            report.paused_reason = reason
+                    reason = self._flush(pending)
                     pending, pending_since = [], None
-                if self.plan.stopping:
-                    self._relay_milestones()
-                if report.paused_reason:
-                    break
-                now = self.clock()
+                    if reason:
+                        report.paused_reason = reason
+                        break
+                self._relay_milestones()
+                self._commit()
+                if now - last_health >= self.health.check_every:
+                    self._check_health(now)
+                    last_health = now
                 if self.progress is not None and now - last_progress >= self.progress_seconds:
                     self.progress(self.statistics())
                     last_progress = now
@@ -206,14 +353,20 @@ class SearchDriver:
                     self.persist()
                     self.files.compact_measurements(min_parts=64)
                     last_persist = now
-        finally:
-            if pending:  # results already in hand are kept, not redone
-                self._write_final_rows(pending)
-                for completion in pending:
-                    self._complete(completion)
+        except StorageError as exc:
+            report.paused_reason = str(exc)
+        try:
+            if pending and not report.paused_reason:  # results already in hand are kept, not redone
+                self._flush(pending)
             self._stop_running()
             self.persist()
             self.files.compact_measurements(min_parts=2)
+        except StorageError as exc:
+            report.paused_reason = report.paused_reason or str(exc)
+            self.executor.close()
+        finally:
+            self.journal.close()
+        report.finished = report.finished and not report.paused_reason
         report.elapsed = self.elapsed
         report.segments = self.segments
         report.statistics = self.statistics()
@@ -221,27 +374,46 @@ class SearchDriver:
             self.progress(report.statistics)
         return report
 
-    def _slots(self) -> int:
-        """Segments to keep submitted: every slot of the cluster, plus the prefetch."""
+    def _slots(self, prefetch: bool = True) -> int:
+        """Segments to keep submitted: every slot of the cluster, plus the prefetch: at least
+        what the cluster finishes in two fill intervals, so that grouped fills starve no CPU."""
         cpus = self.spec.resources.cpus
         capacity = self.executor.capacity()
         if capacity < cpus:
             return 0
         slots = int(capacity // cpus)
-        return slots + (max(1, int(slots * self.prefetch)) if self.prefetch > 0 else 0)
+        if not prefetch or self.prefetch <= 0:
+            return slots
+        elapsed = max(self.clock() - self._started, 1e-3) if hasattr(self, "_started") else 1.0
+        rate = self._segments_this_run / elapsed
+        return slots + max(1, int(slots * self.prefetch), math.ceil(rate * self.flush_seconds * 2))
 
-    def _fill(self) -> bool:
-        """Submit segments while slots are free; True once the core says the search drained."""
-        free = self._slots() - self.executor.in_flight()
+    def _fill(self, now: float) -> bool:
+        """Submit segments while slots are free; True once the core says the search drained.
+        The segments are journaled (one write) before any is submitted. Fills are grouped
+        (one journal write per ``flush_seconds``) unless a CPU would otherwise sit idle."""
+        in_flight = self.executor.in_flight()
+        urgent = in_flight < self._slots(prefetch=False)
+        if not urgent and now - self._last_fill < self.flush_seconds:
+            return False
+        self._last_fill = now
+        free = self._slots() - in_flight
+        segments: list[Segment] = []
+        drained = False
         while free > 0:
             out = self.core.ask()
             if isinstance(out, Drained):
-                return True
+                drained = True
+                break
             if not isinstance(out, Segment):
-                return False
-            self._submit(out)
+                break
+            segments.append(out)
             free -= 1
-        return False
+        self._uncommitted.extend({"e": "seg", "t": s.trial, "a": s.attempt, "r": s.rung} for s in segments)
+        self._commit()  # results applied this loop and these segments, in one durable write
+        for seg in segments:
+            self._submit(seg)
+        return drained
 
     def _submit(self, seg: Segment) -> None:
         order = SegmentOrder(
@@ -259,107 +431,185 @@ class SearchDriver:
             integral=isinstance(self.plan.min_budget, int) and isinstance(self.plan.max_budget, int),
             stopping=self.plan.stopping,
         )
+        now = self.clock()
         self.running[(seg.trial, seg.attempt)] = _Running(
-            seg.trial, seg.attempt, seg.rung, float(seg.start_budget), float(seg.target_budget), self.clock()
+            seg.trial, seg.attempt, seg.rung, float(seg.start_budget), float(seg.target_budget), now, last_progress=now
         )
         self.executor.submit(order, self.spec.resources.cpus, self.spec.resources.memory_mb)
 
-    def _write_final_rows(self, completions: list[Completion]) -> None:
+    def _flush(self, completions: list[Completion]) -> str | None:
+        """Store the rung results gathered, journal them, then apply them to the core.
+        Returns a reason to pause (a storage fault reported by a worker), or None."""
         rows = [row for c in completions if c.summary is not None and (c.trial, c.attempt) in self.running
                 for row in c.summary.final_rows]
         if rows:
             self.files.write_measurements(rows)
+        entries: list[tuple[dict[str, Any], Completion, _Running]] = []
+        pause = None
+        self._segments_this_run += len(completions)
+        for c in completions:
+            run = self.running.pop((c.trial, c.attempt), None)
+            if run is None:
+                log.info("dropped the answer of trial %s attempt %s: the head no longer runs it", c.trial, c.attempt)
+                continue
+            entry = self._entry_for(c, run)
+            entries.append((entry, c, run))
+            if c.summary is not None and c.summary.outcome == "storage":
+                pause = f"storage fault on {c.summary.node}: {c.summary.reason}"
+        for entry, c, run in entries:
+            out = self._log(entry)
+            if entry["e"] in ("lost", "crash"):
+                self._count_node_failure(run.node)
+            if isinstance(out, Failed):
+                log.warning("trial %s failed after %s crashes: %s", c.trial, self.plan.max_crashes + 1, entry.get("why"))
+            if c.summary is not None and c.summary.skipped_checkpoints:
+                log.warning("trial %s: %s", c.trial, "; ".join(c.summary.skipped_checkpoints))
+        return pause
 
-    def _complete(self, c: Completion) -> str | None:
-        """Apply one completion to the core; a storage fault's message to pause on, or None."""
-        run = self.running.pop((c.trial, c.attempt), None)
-        if run is None:
-            log.info("dropped a completion of trial %s attempt %s that is no longer running", c.trial, c.attempt)
-            return None
-        self.segments += 1
-        self.cpu_seconds += self.spec.resources.cpus * max(0.0, self.clock() - run.submitted)
-        try:
-            return self._apply(c, run)
-        except RejectedEvent as exc:  # a stale or duplicate answer: the core is right, drop it
-            log.info("dropped a stale completion: %s", exc)
-            return None
-
-    def _apply(self, c: Completion, run: _Running) -> str | None:
-        core, s = self.core, c.summary
+    def _entry_for(self, c: Completion, run: _Running) -> dict[str, Any]:
+        """The journal entry for one completion (side records, e.g. tracebacks, written first)."""
+        now = self.clock()
+        base = {"t": c.trial, "a": c.attempt, "cpu": self.spec.resources.cpus * max(0.0, now - run.submitted), "el": self.elapsed}
+        s = c.summary
         if s is None:
             if c.lost is not None:
-                core.lost(c.trial, c.attempt)
-            else:
-                self._crashed(c.trial, c.attempt, run.rung, "RungwayTaskError", c.crashed or "", "")
-            return None
-        if s.skipped_checkpoints:
-            log.warning("trial %s: skipped damaged checkpoints: %s", s.trial, "; ".join(s.skipped_checkpoints))
+                return {"e": "lost", **base, "why": c.lost}
+            self.files.record_failure(c.trial, run.rung, c.attempt, "RungwayTaskError", c.crashed or "", "", run.node)
+            return {"e": "crash", **base, "why": c.crashed or ""}
         if s.outcome == "result":
-            self.budget_done += run.target_budget - min(run.start_budget, float(s.checkpoint_budget or 0))
+            advanced = run.target_budget - min(run.start_budget, float(s.checkpoint_budget or 0))
             if not self.plan.stopping:
-                core.report(s.trial, s.attempt, s.rung, s.value if s.value is not None else math.nan)
-            elif core.trial(s.trial).state == "active":  # no relay answered (inline executor)
+                return {"e": "rep", **base, "r": s.rung, "v": s.value if s.value is not None else math.nan, "bud": advanced}
+            if self.core.trial(s.trial).state == "active":  # no relay answered (inline executor)
                 self._apply_stopping_results(s)
-        elif s.outcome == "stopped":
-            self.budget_done += float(s.budget) - run.start_budget
-        elif s.outcome == "yielded":
-            core.yielded(s.trial, s.attempt)
-        elif s.outcome == "crashed":
-            self._crashed(s.trial, s.attempt, s.rung, s.error_type or "Error", s.reason or "", s.traceback or "", s.node)
-        elif s.outcome == "storage":
-            core.lost(s.trial, s.attempt)
-            return f"storage fault on {s.node}: {s.reason}"
-        return None
+            return {"e": "done", **base, "bud": advanced}
+        if s.outcome == "stopped":
+            return {"e": "done", **base, "bud": float(s.budget) - run.start_budget}
+        if s.outcome == "yielded":
+            return {"e": "yield", **base}
+        if s.outcome == "crashed":
+            self.files.record_failure(s.trial, s.rung, s.attempt, s.error_type or "Error", s.reason or "", s.traceback or "", s.node)
+            return {"e": "crash", **base, "why": s.reason or ""}
+        return {"e": "lost", **base, "why": f"storage: {s.reason}"}
 
     def _apply_stopping_results(self, s: SegmentSummary) -> None:
         trial = self.core.trial(s.trial)
         rung = trial.rung
         value = s.value if s.value is not None else math.nan
         while True:
-            verdict = self.core.report(s.trial, s.attempt, rung, value)
+            verdict = self._log({"e": "rep", "t": s.trial, "a": s.attempt, "r": rung, "v": value})
             if not isinstance(verdict, Continue):
                 return
             rung = verdict.rung
 
-    def _crashed(self, trial: int, attempt: int, rung: int, kind: str, reason: str, tb: str, node: str | None = None) -> None:
-        self.files.record_failure(trial, rung, attempt, kind, reason, tb, node)
-        out = self.core.crashed(trial, attempt, reason)
-        if isinstance(out, Failed):
-            log.warning("trial %s failed after %s crashes: %s", trial, self.plan.max_crashes + 1, reason)
-
     def _relay_milestones(self) -> None:
+        """Stopping form: rung results posted by running segments, answered with verdicts;
+        heartbeats of every segment. Drained every loop in the stopping form (segments wait
+        for their verdicts), otherwise a few times per health check."""
+        now = self.clock()
+        if not self.plan.stopping and now - self._last_drain < self.health.check_every / 4:
+            return
+        self._last_drain = now
         posts = self.executor.drain_link()
-        verdicts = []
-        for trial, attempt, rung, value in posts.get("milestones", []):
-            try:
-                out = self.core.report(trial, attempt, rung, value)
-            except RejectedEvent:
-                verdicts.append((trial, attempt, rung, False))
+        for (trial, attempt), (budget, node) in posts.get("beats", {}).items():
+            run = self.running.get((trial, attempt))
+            if run is None:
                 continue
-            verdicts.append((trial, attempt, rung, isinstance(out, Continue)))
+            run.last_beat = now
+            if node:
+                run.node = node
+            if budget is not None and budget > run.progress:
+                run.progress, run.last_progress = float(budget), now
+        milestones = posts.get("milestones", [])
+        if not milestones:
+            return
+        entries = [{"e": "rep", "t": t, "a": a, "r": r, "v": v} for t, a, r, v in milestones if (t, a) in self.running]
+        verdicts = []
+        outcomes = [self._log(entry) for entry in entries]
+        self._commit()  # durable before any segment hears its verdict
+        for entry, out in zip(entries, outcomes, strict=True):
+            run = self.running.get((entry["t"], entry["a"]))
+            if run is not None:
+                run.last_progress = now
+            verdicts.append((entry["t"], entry["a"], entry["r"], isinstance(out, Continue)))
+        for t, a, r, _v in milestones:
+            if (t, a) not in self.running:
+                verdicts.append((t, a, r, False))
         self.executor.decide(verdicts)
+
+    # ---- health ----------------------------------------------------------------------------
+
+    def _check_health(self, now: float) -> None:
+        """Dead nodes, silent segments and hangs; nodes that keep failing are set aside."""
+        gone: list[tuple[_Running, str, str]] = []
+        dead = self.executor.dead_nodes() if self.running else set()
+        hang = self.spec.hang_timeout_seconds
+        for run in self.running.values():
+            if run.node and run.node in dead:
+                gone.append((run, "lost", f"node {run.node[:12]} died"))
+            elif run.last_beat is not None and now - run.last_beat > self.health.beat_timeout:
+                gone.append((run, "lost", f"no heartbeat for {now - run.last_beat:.0f}s"))
+            elif hang is not None and run.last_beat is not None and now - run.last_progress > hang:
+                gone.append((run, "crash", f"hang: no progress for {now - run.last_progress:.0f}s (limits.hang_timeout)"))
+        if gone:
+            entries = []
+            for run, kind, why in gone:
+                self.executor.cancel(run.trial, run.attempt)
+                del self.running[(run.trial, run.attempt)]
+                if kind == "crash":
+                    self.files.record_failure(run.trial, run.rung, run.attempt, "Hang", why, "", run.node)
+                entries.append(({"e": kind, "t": run.trial, "a": run.attempt, "why": why,
+                                 "cpu": self.spec.resources.cpus * (now - run.submitted), "el": self.elapsed}, run))
+                log.warning("trial %s attempt %s: %s; %s", run.trial, run.attempt, why,
+                            "requeued" if kind == "lost" else "counted as a crash")
+            for entry, run in entries:
+                self._log(entry)
+                self._count_node_failure(run.node)
+        for node, until in list(self.quarantined.items()):
+            if until <= now:
+                del self.quarantined[node]
+                log.warning("node %s is back in scheduling", node[:12])
+                self.executor.avoid(set(self.quarantined))
+
+    def _count_node_failure(self, node: str) -> None:
+        if not node:
+            return
+        now = self.clock()
+        window = self.node_failures.setdefault(node, deque())
+        window.append(now)
+        while window and now - window[0] > self.health.node_failure_window:
+            window.popleft()
+        if len(window) >= self.health.node_failure_limit and node not in self.quarantined:
+            self.quarantined[node] = now + self.health.node_quarantine
+            log.warning("node %s failed %d segments in %.0fs: no new segments there for %.0fs",
+                        node[:12], len(window), self.health.node_failure_window, self.health.node_quarantine)
+            self.executor.avoid(set(self.quarantined))
 
     def _check_limits(self) -> None:
         if not self.core.admitting:
             return
         deadline = self.spec.deadline_seconds
+        reason = None
         if deadline is not None and self.elapsed >= deadline:
-            log.info("wall-clock deadline reached: starting no new trials")
-            self.core.stop_admitting()
+            reason = "wall-clock deadline reached"
         cpu_hours = self.spec.limits.cpu_hours
         if cpu_hours is not None and self.cpu_seconds >= cpu_hours * 3600:
-            log.info("CPU-hour limit reached: starting no new trials")
-            self.core.stop_admitting()
+            reason = "CPU-hour limit reached"
+        if reason:
+            log.info("%s: starting no new trials", reason)
+            self._log({"e": "stop", "why": reason})
 
     def _stop_running(self) -> None:
         """Interrupted or paused: cancel what runs and requeue it (its checkpoints stay)."""
+        if not self.running:
+            return
+        entries = [{"e": "lost", "t": t, "a": a, "why": "the head stopped"} for (t, a) in self.running]
         for (trial, attempt) in list(self.running):
             self.executor.cancel(trial, attempt)
-            try:
-                self.core.lost(trial, attempt)
-            except RejectedEvent:
-                pass
         self.running.clear()
+        for entry in entries:
+            self._log(entry)
+        self._commit()
 
     # ---- reading --------------------------------------------------------------------------
 
@@ -386,6 +636,8 @@ class SearchDriver:
                 "cpus_total": self.executor.capacity(),
                 "segments": self.segments,
                 "cpu_seconds": self.cpu_seconds,
+                "quarantined_nodes": sorted(self.quarantined),
+                "journal_replayed": self.replayed,
             }
         )
         return stats

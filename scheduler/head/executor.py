@@ -9,7 +9,9 @@ and for a head without Ray.
 
 from __future__ import annotations
 
+import logging
 import time
+import uuid
 from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -18,6 +20,8 @@ from typing import Any, Protocol
 from rungway.workers.runner import SegmentOrder, SegmentSummary, run_segment
 
 __all__ = ["Completion", "Executor", "InlineExecutor", "RayExecutor", "classify_ray_error"]
+
+log = logging.getLogger("rungway.head")
 
 
 @dataclass(slots=True)
@@ -51,6 +55,14 @@ class Executor(Protocol):
     def decide(self, verdicts: list[tuple[int, int, int, bool]]) -> None: ...
 
     def ask_to_yield(self, trial: int, attempt: int) -> None: ...
+
+    def dead_nodes(self) -> set[str]:
+        """Ids of the nodes the cluster reports dead."""
+        ...
+
+    def avoid(self, nodes: set[str]) -> None:
+        """Schedule no new segment on these nodes (they keep failing)."""
+        ...
 
     def close(self) -> None: ...
 
@@ -89,6 +101,12 @@ class InlineExecutor:
         return None
 
     def ask_to_yield(self, trial: int, attempt: int) -> None:
+        return None
+
+    def dead_nodes(self) -> set[str]:
+        return set()
+
+    def avoid(self, nodes: set[str]) -> None:
         return None
 
     def close(self) -> None:
@@ -138,13 +156,18 @@ class RayExecutor:
 
         self._ray = ray
         self._task = segment_task
-        self._relay = relay if relay is not None else Relay.remote()
+        # Tasks find the relay by name (an actor handle as a task argument costs each task a
+        # round trip to the control store; a name is looked up once per worker process).
+        self._relay_name = f"rungway-relay-{uuid.uuid4().hex[:12]}"
+        self._relay = relay if relay is not None else Relay.options(name=self._relay_name).remote()
         self._refs: dict[Any, tuple[int, int]] = {}
         self._by_trial: dict[tuple[int, int], Any] = {}
         self._strategy = "SPREAD" if spread else "DEFAULT"
         self._capacity_checked = 0.0
         self._capacity = 0.0
         self._variants: dict[tuple[float, int], Any] = {}
+        self._avoid: frozenset[str] = frozenset()
+        self._drain_ref: Any = None
 
     def capacity(self) -> float:
         now = time.monotonic()
@@ -155,12 +178,18 @@ class RayExecutor:
 
     def submit(self, order: SegmentOrder, cpus: float, memory_mb: int) -> None:
         task = self._variants.get((cpus, memory_mb))
-        if task is None:  # .options() is not free: one variant per resource shape
+        if task is None:  # .options() is not free: one variant per resource shape and node set
             options: dict[str, Any] = {"num_cpus": cpus, "scheduling_strategy": self._strategy}
+            if self._avoid:
+                from ray.util.scheduling_strategies import NodeLabelSchedulingStrategy, NotIn
+
+                options["scheduling_strategy"] = NodeLabelSchedulingStrategy(
+                    hard={"ray.io/node_id": NotIn(*sorted(self._avoid))}
+                )
             if memory_mb:
                 options["memory"] = int(memory_mb) * 1024 * 1024
             task = self._variants[(cpus, memory_mb)] = self._task.options(**options)
-        ref = task.remote(order, self._relay if order.stopping else None)
+        ref = task.remote(order, self._relay_name)
         self._refs[ref] = (order.trial, order.attempt)
         self._by_trial[(order.trial, order.attempt)] = ref
 
@@ -198,7 +227,26 @@ class RayExecutor:
         return len(self._refs)
 
     def drain_link(self) -> dict[str, Any]:
-        return self._ray.get(self._relay.drain.remote())
+        """Never blocks: takes the answer of the drain asked for last time, if it is in, and
+        asks for the next one (the relay's start-up or a busy relay costs the loop nothing)."""
+        empty: dict[str, Any] = {"milestones": [], "beats": {}}
+        if self._drain_ref is not None:
+            ready, _ = self._ray.wait([self._drain_ref], timeout=0)
+            if not ready:
+                return empty
+            try:
+                result = self._ray.get(self._drain_ref)
+            except Exception as exc:  # the relay died with its node; start another
+                log.warning("the head's relay actor failed (%s); starting a new one", type(exc).__name__)
+                from rungway.workers.link import Relay
+
+                self._relay_name = f"rungway-relay-{uuid.uuid4().hex[:12]}"
+                self._relay = Relay.options(name=self._relay_name).remote()
+                result = empty
+            self._drain_ref = self._relay.drain.remote()
+            return result
+        self._drain_ref = self._relay.drain.remote()
+        return empty
 
     def decide(self, verdicts: list[tuple[int, int, int, bool]]) -> None:
         if verdicts:
@@ -206,6 +254,14 @@ class RayExecutor:
 
     def ask_to_yield(self, trial: int, attempt: int) -> None:
         self._relay.ask_to_yield.remote(trial, attempt)
+
+    def dead_nodes(self) -> set[str]:
+        return {n["NodeID"] for n in self._ray.nodes() if not n.get("Alive", False)}
+
+    def avoid(self, nodes: set[str]) -> None:
+        if frozenset(nodes) != self._avoid:
+            self._avoid = frozenset(nodes)
+            self._variants.clear()
 
     def close(self) -> None:
         for ref in list(self._refs):

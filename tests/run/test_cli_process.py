@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
-from conftest import HERE, spec_text
+from runhelpers import HERE, spec_text
 from objectives_run import value_at
 
 pytestmark = [pytest.mark.ray, pytest.mark.slow]

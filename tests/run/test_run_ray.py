@@ -6,7 +6,7 @@ import math
 
 import pyarrow.parquet as pq
 import pytest
-from conftest import spec_text
+from runhelpers import spec_text
 from objectives_run import value_at
 
 from rungway.scheduler.head.driver import SearchDriver
