@@ -43,6 +43,8 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--cpus", type=int, help="CPUs for the embedded local Ray (default: all of this machine)")
         p.add_argument("--json", action="store_true", help="print the final summary as JSON")
         p.add_argument("--no-probe", action="store_true", help="skip trying the objective once here before the search starts")
+        p.add_argument("--retry-storage", type=float, metavar="SECONDS",
+                       help="on a storage fault, wait this long and resume, until it is fixed (default: stop with status 3)")
 
     run = sub.add_parser("run", help="run a search to completion in the foreground (resumes if it was stopped)")
     run.add_argument("spec", help="the search's spec file (TOML)")
@@ -106,8 +108,9 @@ def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
         _probe(spec)
     from rungway.scheduler.cli.progress import ProgressView
     from rungway.scheduler.head.cluster import ray_session
-    from rungway.scheduler.head.driver import SearchDriver
+    from rungway.scheduler.head.driver import RunReport, SearchDriver
     from rungway.scheduler.head.executor import RayExecutor
+    from rungway.scheduler.store import StorageError
 
     store_root = _absolute_root(args.store)
     stop = {"asked": False}
@@ -119,10 +122,23 @@ def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
         print("\nstopping: requeueing running segments and writing state (Ctrl-C again to quit at once)", file=sys.stderr)
 
     previous = signal.signal(signal.SIGINT, on_sigint)
+    driver = None
     try:
         with ray_session(args.address, args.cpus):
-            driver = SearchDriver(spec, spec_text, store_root, RayExecutor(), progress=ProgressView())
-            report = driver.run(lambda: stop["asked"])
+            while True:
+                try:
+                    driver = SearchDriver(spec, spec_text, store_root, RayExecutor(), progress=ProgressView())
+                    report = driver.run(lambda: stop["asked"])
+                except StorageError as exc:
+                    if args.retry_storage is None:
+                        raise
+                    report = RunReport(finished=False, paused_reason=str(exc))
+                if not report.paused_reason or args.retry_storage is None or stop["asked"]:
+                    break
+                print(f"paused: {report.paused_reason}\nretrying in {args.retry_storage:g}s (Ctrl-C to stop)", file=sys.stderr)
+                _sleep_unless(stop, args.retry_storage)
+                if stop["asked"]:
+                    break
     finally:
         signal.signal(signal.SIGINT, previous)
     stats = report.statistics
@@ -133,8 +149,8 @@ def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
         "paused": report.paused_reason,
         "elapsed_seconds": round(report.elapsed, 3),
         "segments": report.segments,
-        "trials": stats["trials"],
-        "best": _best(driver),
+        "trials": stats.get("trials", 0),
+        "best": _best(driver) if driver is not None else None,
         "store": os.path.join(store_root, "searches", spec.name) if "://" not in store_root else f"{store_root}/searches/{spec.name}",
     }
     if args.json:
@@ -147,6 +163,14 @@ def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
     if report.interrupted:
         return EXIT_INTERRUPTED
     return 0
+
+
+def _sleep_unless(stop: dict[str, bool], seconds: float) -> None:
+    import time
+
+    end = time.monotonic() + seconds
+    while not stop["asked"] and time.monotonic() < end:
+        time.sleep(min(0.2, seconds))
 
 
 def _probe(spec: Any) -> None:

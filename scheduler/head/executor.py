@@ -151,7 +151,6 @@ class RayExecutor:
     def __init__(self, relay: Any | None = None, spread: bool = False) -> None:
         import ray
 
-        from rungway.workers.link import Relay
         from rungway.workers.ray_task import segment_task
 
         self._ray = ray
@@ -159,7 +158,7 @@ class RayExecutor:
         # Tasks find the relay by name (an actor handle as a task argument costs each task a
         # round trip to the control store; a name is looked up once per worker process).
         self._relay_name = f"rungway-relay-{uuid.uuid4().hex[:12]}"
-        self._relay = relay if relay is not None else Relay.options(name=self._relay_name).remote()
+        self._relay = relay if relay is not None else self._start_relay()
         self._refs: dict[Any, tuple[int, int]] = {}
         self._by_trial: dict[tuple[int, int], Any] = {}
         self._strategy = "SPREAD" if spread else "DEFAULT"
@@ -168,6 +167,17 @@ class RayExecutor:
         self._variants: dict[tuple[float, int], Any] = {}
         self._avoid: frozenset[str] = frozenset()
         self._drain_ref: Any = None
+
+    def _start_relay(self) -> Any:
+        """The relay lives on the head's own node, which dies only with the head."""
+        from ray.util.scheduling_strategies import NodeAffinitySchedulingStrategy
+
+        from rungway.workers.link import Relay
+
+        here = self._ray.get_runtime_context().get_node_id()
+        return Relay.options(
+            name=self._relay_name, scheduling_strategy=NodeAffinitySchedulingStrategy(here, soft=False)
+        ).remote()
 
     def capacity(self) -> float:
         now = time.monotonic()
@@ -238,10 +248,8 @@ class RayExecutor:
                 result = self._ray.get(self._drain_ref)
             except Exception as exc:  # the relay died with its node; start another
                 log.warning("the head's relay actor failed (%s); starting a new one", type(exc).__name__)
-                from rungway.workers.link import Relay
-
                 self._relay_name = f"rungway-relay-{uuid.uuid4().hex[:12]}"
-                self._relay = Relay.options(name=self._relay_name).remote()
+                self._relay = self._start_relay()
                 result = empty
             self._drain_ref = self._relay.drain.remote()
             return result

@@ -57,3 +57,14 @@ def flaky(config, budget):
 
 def always_fails(config, budget):
     raise ValueError("this objective always fails")
+
+
+def padded(ctx):
+    """Like ``resumable``, with checkpoints of about 64 KiB (to fill a small disk)."""
+    x = ctx.config["x"]
+    state = ctx.state if ctx.state is not None else {"value": x, "step": 0, "pad": b"\0" * 65536}
+    for step in range(ctx.start, ctx.budget):
+        state = {"value": math.sin(state["value"] * 1.7 + step) + 0.01 * step, "step": step + 1, "pad": state["pad"]}
+        ctx.save(state, step + 1)
+        ctx.report(step + 1, loss=(x - 0.3) ** 2 + state["value"] / (step + 2))
+    return {"loss": (x - 0.3) ** 2 + state["value"] / (ctx.budget + 1)}
