@@ -129,6 +129,7 @@ class SearchDriver:
         self.cpu_seconds = 0.0
         self.elapsed_before = 0.0
         self.segments = 0
+        self.lost_segments = 0  # segments requeued because their machine, worker or head went away
         self.replayed = 0
         self.replay_seconds = 0.0
         self.node_failures: dict[str, deque[float]] = {}
@@ -220,6 +221,8 @@ class SearchDriver:
         self.elapsed_before = max(self.elapsed_before, entry.get("el", 0.0)) if not hasattr(self, "_started") else self.elapsed_before
         if kind in ("rep", "lost", "crash", "yield", "done"):
             self.segments += 1
+        if kind == "lost":
+            self.lost_segments += 1
         try:
             if kind == "rep":
                 return core.report(entry["t"], entry["a"], entry["r"], float(entry["v"]))
@@ -635,6 +638,7 @@ class SearchDriver:
                 "cpus_busy": min(len(self.running) * self.spec.resources.cpus, self.executor.capacity()),
                 "cpus_total": self.executor.capacity(),
                 "segments": self.segments,
+                "lost_segments": self.lost_segments,
                 "cpu_seconds": self.cpu_seconds,
                 "quarantined_nodes": sorted(self.quarantined),
                 "journal_replayed": self.replayed,

@@ -1,0 +1,83 @@
+"""Losing a machine mid-search (ray.cluster_utils): its segments are requeued from their
+checkpoints on the other nodes, every trial finishes, every result equals the deterministic
+objective's value (objectives_run.value_at) and none is recorded twice."""
+
+from __future__ import annotations
+
+import sys
+import threading
+import time
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+RUN = Path(__file__).resolve().parents[1] / "run"
+sys.path.insert(0, str(RUN))
+
+from objectives_run import value_at  # noqa: E402
+from runhelpers import _worker_path, spec_text  # noqa: E402
+
+from rungway.scheduler.head.driver import HealthSettings, SearchDriver  # noqa: E402
+from rungway.scheduler.head.executor import RayExecutor  # noqa: E402
+from rungway.scheduler.spec import parse_spec  # noqa: E402
+
+pytestmark = [pytest.mark.ray, pytest.mark.slow]
+
+
+def check_exact(driver: SearchDriver, trials: int) -> pd.DataFrame:
+    frame = driver.files.read_measurements()
+    finals = frame[frame["final"]]
+    assert not finals.duplicated(["trial", "rung", "metric"]).any(), "a rung result was recorded twice"
+    table = driver.files.read_trials().set_index("trial")
+    assert len(table) == trials
+    for row in finals.itertuples():
+        assert row.value == pytest.approx(value_at(table.loc[row.trial, "param_x"], int(row.budget)), abs=1e-12)
+    return finals
+
+
+def test_removing_a_node_while_segments_run_on_it_loses_nothing(tmp_path: Path, monkeypatch) -> None:
+    import ray
+    from ray.cluster_utils import Cluster
+
+    _worker_path()
+    monkeypatch.setenv("RUNGWAY_TEST_SLEEP", "0.4")
+    if ray.is_initialized():
+        ray.shutdown()
+    cluster = Cluster(initialize_head=True, head_node_args={"num_cpus": 1, "include_dashboard": False})
+    doomed = cluster.add_node(num_cpus=2)
+    cluster.add_node(num_cpus=1)
+    try:
+        ray.init(address=cluster.address, logging_level="ERROR")
+        cluster.wait_for_nodes()
+        text = spec_text("node-loss", objective="objectives_run:sleepy", trials=24)
+        driver = SearchDriver(parse_spec(text), text, str(tmp_path), RayExecutor(),
+                              health=HealthSettings(check_every=0.5, beat_timeout=6.0))
+        doomed_id = doomed.node_id
+        removed = threading.Event()
+        lost_before = []
+
+        def remove_when_busy() -> None:
+            deadline = time.monotonic() + 60
+            while time.monotonic() < deadline:
+                running_there = [r for r in list(driver.running.values()) if r.node == doomed_id]
+                if len(running_there) >= 1 and driver.segments >= 6:
+                    lost_before.append(len(running_there))
+                    cluster.remove_node(doomed, allow_graceful=False)
+                    removed.set()
+                    return
+                time.sleep(0.05)
+
+        killer = threading.Thread(target=remove_when_busy, daemon=True)
+        killer.start()
+        report = driver.run()
+        killer.join(timeout=5)
+        assert removed.is_set(), "the node never had a segment running on it"
+        assert report.finished
+        finals = check_exact(driver, 24)
+        assert driver.lost_segments >= 1  # the dead node's segments were requeued and ran again
+        assert len({n.split("/")[1] for n in finals["node"]}) >= 2
+        assert all(t.state in ("parked", "done") for t in driver.core.trials())
+    finally:
+        ray.shutdown()
+        cluster.shutdown()
