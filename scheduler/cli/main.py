@@ -123,6 +123,9 @@ def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
 
     previous = signal.signal(signal.SIGINT, on_sigint)
     driver = None
+    # While the search runs, anything printed (Ray forwards worker and node messages to the
+    # driver's stdout) goes to stderr: stdout carries only the summary (JSON with --json).
+    real_stdout, sys.stdout = sys.stdout, sys.stderr
     try:
         with ray_session(args.address, args.cpus):
             while True:
@@ -141,6 +144,7 @@ def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
                     break
     finally:
         signal.signal(signal.SIGINT, previous)
+        sys.stdout = real_stdout
     stats = report.statistics
     summary = {
         "search": spec.name,
