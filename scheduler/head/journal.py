@@ -51,11 +51,11 @@ class Journal:
             self.directory.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
             raise translate(exc, str(self.directory), "creating") from exc
-        last = None
-        for _n, entry in self._scan(0):
-            last = entry
-        if last is not None:
-            self.seq = int(last["n"])
+        for path in reversed(self.files()):  # the newest file that holds an entry gives the sequence
+            last = self._last_seq_of(path)
+            if last is not None:
+                self.seq = last
+                break
 
     def files(self) -> list[Path]:
         return sorted(self.directory.glob(f"{PREFIX}*{SUFFIX}"))
