@@ -68,3 +68,16 @@ def padded(ctx):
         ctx.save(state, step + 1)
         ctx.report(step + 1, loss=(x - 0.3) ** 2 + state["value"] / (step + 2))
     return {"loss": (x - 0.3) ** 2 + state["value"] / (ctx.budget + 1)}
+
+
+def slow_resumable(ctx):
+    """Resumable, ``RUNGWAY_TEST_SLEEP`` seconds per budget unit, a checkpoint every unit."""
+    delay = float(os.environ.get("RUNGWAY_TEST_SLEEP", "0.2"))
+    x = ctx.config["x"]
+    state = ctx.state if ctx.state is not None else {"value": x, "step": 0}
+    for step in range(ctx.start, ctx.budget):
+        time.sleep(delay)
+        state = {"value": math.sin(state["value"] * 1.7 + step) + 0.01 * step, "step": step + 1}
+        ctx.save(state, step + 1)
+        ctx.report(step + 1, loss=(x - 0.3) ** 2 + state["value"] / (step + 2))
+    return {"loss": (x - 0.3) ** 2 + state["value"] / (ctx.budget + 1)}
