@@ -42,6 +42,7 @@ from rungway.scheduler.store import StorageError
 from rungway.workers.runner import SegmentOrder, SegmentSummary
 
 from .executor import Completion, Executor
+from .estimate import TimeLeft
 from .journal import Journal
 
 __all__ = ["SearchDriver", "RunReport", "HEAD_STATE", "HealthSettings"]
@@ -135,6 +136,7 @@ class SearchDriver:
         self.node_failures: dict[str, deque[float]] = {}
         self.quarantined: dict[str, float] = {}
         self.planned = planned_budget(self.plan)
+        self.time_left = TimeLeft(spec)
         self._uncommitted: list[dict[str, Any]] = []
         self._last_drain = 0.0
         self._last_fill = 0.0
@@ -349,6 +351,8 @@ class SearchDriver:
                 if now - last_health >= self.health.check_every:
                     self._check_health(now)
                     last_health = now
+                if self.progress is not None:
+                    self.time_left.maybe_update(now, self._slots(prefetch=False))
                 if self.progress is not None and now - last_progress >= self.progress_seconds:
                     self.progress(self.statistics())
                     last_progress = now
@@ -460,6 +464,8 @@ class SearchDriver:
             if c.summary is not None and c.summary.outcome == "storage":
                 pause = f"storage fault on {c.summary.node}: {c.summary.reason}"
         for entry, c, run in entries:
+            if c.summary is not None and c.summary.outcome == "result":
+                self.time_left.record(run.target_budget - run.start_budget, c.summary.ended - c.summary.started)
             out = self._log(entry)
             if entry["e"] in ("lost", "crash"):
                 self._count_node_failure(run.node)
@@ -619,8 +625,8 @@ class SearchDriver:
     def statistics(self) -> dict[str, Any]:
         stats = self.core.statistics()
         elapsed = self.elapsed
-        eta_seconds = None
-        if self.planned and self.budget_done > 0:
+        eta_seconds = self.time_left.seconds_left(elapsed)  # the simulator's, once it has data
+        if eta_seconds is None and self.planned and self.budget_done > 0:
             rate = self.budget_done / max(elapsed, 1e-9)
             eta_seconds = max(0.0, (self.planned - self.budget_done) / rate)
         deadline = self.spec.deadline_seconds
