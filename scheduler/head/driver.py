@@ -220,7 +220,8 @@ class SearchDriver:
         core, kind = self.core, entry["e"]
         self.cpu_seconds += entry.get("cpu", 0.0)
         self.budget_done += entry.get("bud", 0.0)
-        self.elapsed_before = max(self.elapsed_before, entry.get("el", 0.0)) if not hasattr(self, "_started") else self.elapsed_before
+        if not hasattr(self, "_started"):  # replaying: the journal knows how long the search ran
+            self.elapsed_before = max(self.elapsed_before, entry.get("el", 0.0))
         if kind in ("rep", "lost", "crash", "yield", "done"):
             self.segments += 1
         if kind == "lost":
