@@ -116,7 +116,8 @@ class Journal:
         the files whose entries are all covered."""
         self._close()
         files = self.files()
-        for current, following in zip(files, files[1:] + [None], strict=True):
+        following_files: list[Path | None] = [*files[1:], None]
+        for current, following in zip(files, following_files[: len(files)], strict=True):
             if following is None:
                 last = self._last_seq_of(current)
                 if last is not None and last > covered_seq:

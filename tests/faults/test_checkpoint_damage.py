@@ -76,3 +76,15 @@ def test_a_trial_whose_only_checkpoint_is_damaged_restarts_and_says_so(tmp_path:
     assert any("restarted from budget 0" in note for note in summary.skipped_checkpoints)
     assert summary.value == pytest.approx(value_at(0.7, 9), abs=1e-12)
     assert files.load_checkpoint(0).info.budget == 9
+
+
+def test_running_a_finished_search_again_is_a_no_op(tmp_path: Path) -> None:
+    """A unit that restarts after its search finished must find nothing to do, not crash."""
+    text = spec_text("twice", trials=6, max_budget=3)
+    spec = parse_spec(text)
+    first = SearchDriver(spec, text, str(tmp_path), InlineExecutor(cpus=2)).run()
+    assert first.finished
+    before = SearchDriver(spec, text, str(tmp_path), InlineExecutor(cpus=2))
+    again = before.run()
+    assert again.finished and again.segments == first.segments
+    assert len(before.files.read_trials()) == 6
