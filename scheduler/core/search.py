@@ -14,7 +14,13 @@ that is in the top floor(n_k / eta) and not yet promoted; else start a new trial
 rung. Synchronous modes wait at a barrier until every trial of a rung has a result, then
 promote the top floor(n_k / eta) of them.
 
-Cost: each decision and each result is O(K log n) for K rungs and n results per rung.
+Cost, for K rungs and n results per rung (see ranking.py for the boards). Each promotion
+board keeps ASHA's answer for its rung up to date as results arrive and leave, so scanning the
+rungs on a free slot is one read per rung, O(K); a promotion then costs the board's heap pop,
+O(log n), and amortised O(1) more for the board's bar. A result costs a heap push at a
+promotion board (O(1) on average) and a sorted-list insertion, O(log n), at any other board
+(the stopping form adds one O(log n) rank). Configurations come from the sampler, a block at a
+time for the random sampler.
 """
 
 from __future__ import annotations
@@ -49,13 +55,29 @@ from .events import (
 )
 from .ladder import Budget
 from .plan import SearchPlan
-from .ranking import RungBoard, to_loss
+from .ranking import PromotionBoard, RungBoard, to_loss
 from .samplers.base import Sampler
-from .states import ACTIVE, CANCELLED, FINAL_STATES, PARKED, QUEUED, STATES, advance
+from .states import ACTIVE, CANCELLED, FINAL_STATES, PARKED, QUEUED, STATES, TRANSITIONS, advance
 
 __all__ = ["SearchCore", "TrialView", "SNAPSHOT_FORMAT"]
 
 SNAPSHOT_FORMAT = 1
+
+
+def _move(move: str) -> dict[str, str]:
+    """State -> new state for one move: the part of the transition table the hot path reads
+    with one dict lookup instead of calling :func:`advance`. A state the table does not allow
+    the move from is missing, and ``_MOVE.get(state) or advance(state, move)`` then raises
+    exactly what ``advance`` does (states are non-empty strings)."""
+    return {state: target for (state, name), target in TRANSITIONS.items() if name == move}
+
+
+_DISPATCH = _move("dispatch")
+_PROMOTE = _move("promote")
+_PARK = _move("park")
+_FINISH = _move("finish")
+_CONTINUE = _move("continue")
+_CULL = _move("cull")
 
 
 class _Trial:
@@ -79,13 +101,27 @@ class _Trial:
 class _Bracket:
     """Rung boards of one ladder, plus barrier bookkeeping when it is synchronous."""
 
-    __slots__ = ("budgets", "top", "level_offset", "boards", "counts", "level", "created", "outstanding")
+    __slots__ = (
+        "budgets", "top", "level_offset", "boards", "descending", "milestones", "remaining", "counts", "level",
+        "created", "outstanding",
+    )
 
-    def __init__(self, budgets: tuple[Budget, ...], level_offset: int, counts: tuple[int, ...] | None) -> None:
+    def __init__(
+        self, budgets: tuple[Budget, ...], level_offset: int, counts: tuple[int, ...] | None, eta: int, promoting: bool
+    ) -> None:
         self.budgets = budgets
         self.top = len(budgets) - 1
         self.level_offset = level_offset
-        self.boards = [RungBoard() for _ in budgets]
+        # Results wait for promotion only at the rungs below the top of an asynchronous
+        # ladder in the promotion form.
+        self.boards: list[RungBoard | PromotionBoard] = [
+            PromotionBoard(eta) if promoting and k < self.top else RungBoard() for k in range(len(budgets))
+        ]
+        # (rung, board) of the promotion boards, top-down: the order ASHA checks them in.
+        self.descending = tuple((k, self.boards[k]) for k in range(self.top - 1, -1, -1)) if promoting else ()
+        # A segment's milestones, per rung it starts at: made once, handed out many times.
+        self.milestones = tuple((b,) for b in budgets)  # promotion form: up to the next rung
+        self.remaining = tuple(budgets[k:] for k in range(len(budgets)))  # stopping form: to the top
         self.counts = counts
         self.level = 0  # synchronous: the rung whose barrier is open
         self.created = 0  # trials started in this bracket
@@ -116,7 +152,14 @@ class SearchCore:
         self._maximize = plan.maximize
         self._stopping = plan.stopping
         self._synchronous = plan.synchronous
-        self._brackets = [_Bracket(bp.ladder.budgets, bp.level_offset, bp.counts) for bp in plan.brackets()]
+        self._max_trials = plan.max_trials
+        # The default Sampler.observe ignores results: skip the call on every report then.
+        observe = sampler.observe
+        self._observe = None if getattr(observe, "__func__", None) is Sampler.observe else observe
+        promoting = not plan.synchronous and not plan.stopping
+        self._brackets = [
+            _Bracket(bp.ladder.budgets, bp.level_offset, bp.counts, plan.eta, promoting) for bp in plan.brackets()
+        ]
         self._trials: list[_Trial] = []
         self._queue: deque[int] = deque()
         self._active = 0
@@ -152,36 +195,31 @@ class SearchCore:
             return self._ask_synchronous()
         brackets = self._brackets
         count = len(brackets)
-        start = self._cursor
-        for i in range(count):
-            index = (start + i) % count
-            bracket = brackets[index]
-            segment = self._promote_async(bracket)
-            if segment is not None:
-                self._cursor = (index + 1) % count
-                return segment
+        index = self._cursor
+        for _ in range(count):
+            following = index + 1 if index + 1 < count else 0
+            # Each board keeps its answer up to date (``ready``), so checking the rungs is a
+            # read per rung.
+            for k, board in brackets[index].descending:
+                if board.ready is not None:
+                    self._cursor = following
+                    return self._promote(board, k)
             if self._admitting:
                 trial = self._new_trial(index)
                 if trial is not None:
-                    self._cursor = (index + 1) % count
+                    self._cursor = following
                     return self._dispatch(trial)
+            index = following
         if self._active == 0 and not self._admitting:
             return DRAINED
         return IDLE
 
-    def _promote_async(self, bracket: _Bracket) -> Segment | None:
-        eta = self._eta
-        boards = bracket.boards
-        for k in range(bracket.top - 1, -1, -1):
-            entry = boards[k].promotable(eta)
-            if entry is not None:
-                boards[k].withdraw(entry)
-                boards[k].promoted += 1
-                trial = self._trials[entry[1]]
-                trial.state = advance(trial.state, "promote", trial.id)
-                trial.rung = k + 1
-                return self._dispatch(trial)
-        return None
+    def _promote(self, board: PromotionBoard, k: int) -> Segment:
+        trial = self._trials[board.promote()[1]]
+        state = trial.state
+        trial.state = _PROMOTE.get(state) or advance(state, "promote", trial.id)
+        trial.rung = k + 1
+        return self._dispatch(trial)
 
     def _ask_synchronous(self) -> Segment | Idle | Drained:
         brackets = self._brackets
@@ -213,7 +251,7 @@ class SearchCore:
         promoted = 0
         # A cancelled trial keeps its place in the ranking: the places are the top floor(n/eta)
         # of the results, not the top floor(n/eta) of the trials still around.
-        for rank, (_loss, tid) in enumerate(board.results):
+        for rank, (_loss, tid) in enumerate(board.results()):
             trial = self._trials[tid]
             if trial.state != PARKED or trial.rung != bracket.level:
                 continue
@@ -232,31 +270,34 @@ class SearchCore:
         return True
 
     def _new_trial(self, bracket_index: int) -> _Trial | None:
-        max_trials = self.plan.max_trials
-        if max_trials is not None and len(self._trials) >= max_trials:
+        trials = self._trials
+        max_trials = self._max_trials
+        if max_trials is not None and len(trials) >= max_trials:
             self._admitting = False
             return None
         config = self.sampler.propose()
         if config is None:
             self._admitting = False
             return None
-        trial = _Trial(len(self._trials), bracket_index, config)
-        self._trials.append(trial)
+        trial = _Trial(len(trials), bracket_index, config)
+        trials.append(trial)
         self._brackets[bracket_index].created += 1
         return trial
 
     def _dispatch(self, trial: _Trial) -> Segment:
-        trial.state = advance(trial.state, "dispatch", trial.id)
-        trial.attempt += 1
+        state = trial.state
+        trial.state = _DISPATCH.get(state) or advance(state, "dispatch", trial.id)
+        attempt = trial.attempt = trial.attempt + 1
         self._active += 1
-        budgets = self._brackets[trial.bracket].budgets
+        b = trial.bracket
+        bracket = self._brackets[b]
+        rung = trial.rung
         if self._stopping:
             return Segment(
-                trial.id, trial.attempt, trial.rung, trial.bracket, trial.saved, budgets[-1],
-                trial.config, budgets[trial.rung:],
+                trial.id, attempt, rung, b, trial.saved, bracket.budgets[-1], trial.config, bracket.remaining[rung]
             )
-        target = budgets[trial.rung]
-        return Segment(trial.id, trial.attempt, trial.rung, trial.bracket, trial.saved, target, trial.config, (target,))
+        milestones = bracket.milestones[rung]
+        return Segment(trial.id, attempt, rung, b, trial.saved, milestones[0], trial.config, milestones)
 
     # ---- results and failures -------------------------------------------------------------
 
@@ -272,7 +313,10 @@ class SearchCore:
 
     def report(self, tid: int, attempt: int, rung: int, value: float) -> Parked | Finished | Continue | Culled:
         """Segment ``attempt`` of trial ``tid`` measured ``value`` at ``rung``."""
-        trial = self._running(tid, attempt)
+        trials = self._trials
+        trial = trials[tid] if 0 <= tid < len(trials) else None
+        if trial is None or trial.state != ACTIVE or attempt != trial.attempt:
+            trial = self._running(tid, attempt)  # raises, saying why
         if rung != trial.rung:
             raise RejectedEvent(f"trial {tid}: a result for rung {rung} arrived, but it is running to rung {trial.rung}")
         loss = to_loss(float(value), self._maximize)
@@ -280,28 +324,31 @@ class SearchCore:
         board = bracket.boards[rung]
         trial.loss = loss
         trial.saved = bracket.budgets[rung]
-        self.sampler.observe(tid, trial.config, rung + bracket.level_offset, loss)
+        observe = self._observe
+        if observe is not None:
+            observe(tid, trial.config, rung + bracket.level_offset, loss)
         top = rung == bracket.top
+        state = trial.state  # ACTIVE
         if self._stopping:
-            entry = board.record(loss, tid, False)
+            entry = board.record(loss, tid)
             if not top and board.rank(entry) * self._eta < len(board):
-                trial.state = advance(trial.state, "continue", tid)
+                trial.state = _CONTINUE.get(state) or advance(state, "continue", tid)
                 trial.rung = rung + 1
                 return Continue(tid, rung + 1)
             self._active -= 1
             if top:
-                trial.state = advance(trial.state, "finish", tid)
+                trial.state = _FINISH.get(state) or advance(state, "finish", tid)
                 return Finished(tid)
-            trial.state = advance(trial.state, "cull", tid)
+            trial.state = _CULL.get(state) or advance(state, "cull", tid)
             return Culled(tid, rung)
         self._active -= 1
-        board.record(loss, tid, not top and not self._synchronous)
+        board.record(loss, tid)
         if self._synchronous:
             bracket.outstanding -= 1
         if top:
-            trial.state = advance(trial.state, "finish", tid)
+            trial.state = _FINISH.get(state) or advance(state, "finish", tid)
             return Finished(tid)
-        trial.state = advance(trial.state, "park", tid)
+        trial.state = _PARK.get(state) or advance(state, "park", tid)
         return Parked(tid, rung)
 
     def lost(self, tid: int, attempt: int) -> Requeued:
@@ -352,6 +399,8 @@ class SearchCore:
             self._queue.remove(tid)
             self._leave_barrier(trial)
         elif state == PARKED and trial.loss is not None:
+            # Asynchronous: its result waits at that rung's promotion board; synchronous: the
+            # board has no queue (and withdraw does nothing).
             self._brackets[trial.bracket].boards[trial.rung].withdraw((trial.loss, tid))
         return Cancelled(tid)
 
@@ -389,7 +438,7 @@ class SearchCore:
 
         Reads the rung boards, whose budgets are comparable within a level across brackets.
         """
-        by_level: dict[int, list[RungBoard]] = {}
+        by_level: dict[int, list[RungBoard | PromotionBoard]] = {}
         for bracket in self._brackets:
             for k, board in enumerate(bracket.boards):
                 if len(board):
@@ -397,7 +446,7 @@ class SearchCore:
         seen: set[int] = set()
         out: list[TrialView] = []
         for level in sorted(by_level, reverse=True):
-            merged = sorted(e for board in by_level[level] for e in board.results[: limit + len(seen)])
+            merged = sorted(e for board in by_level[level] for e in board.best(limit + len(seen)))
             for _loss, tid in merged:
                 if tid in seen:
                     continue
@@ -458,9 +507,10 @@ class SearchCore:
             "brackets": [
                 {
                     "boards": [
-                        {"results": [list(e) for e in board.results], "unpromoted": [list(e) for e in board.unpromoted],
+                        {"results": [list(e) for e in results], "unpromoted": [list(e) for e in waiting],
                          "promoted": board.promoted}
                         for board in b.boards
+                        for results, waiting in (board.dump(),)
                     ],
                     "level": b.level,
                     "created": b.created,
@@ -494,8 +544,10 @@ class SearchCore:
             core._trials.append(trial)
         for bracket, data in zip(core._brackets, snapshot["brackets"], strict=True):
             for board, bdata in zip(bracket.boards, data["boards"], strict=True):
-                board.results.update((float(loss), int(tid)) for loss, tid in bdata["results"])
-                board.unpromoted.update((float(loss), int(tid)) for loss, tid in bdata["unpromoted"])
+                board.load(
+                    sorted((float(loss), int(tid)) for loss, tid in bdata["results"]),
+                    sorted((float(loss), int(tid)) for loss, tid in bdata["unpromoted"]),
+                )
                 board.promoted = bdata["promoted"]
             bracket.level = data["level"]
             bracket.created = data["created"]

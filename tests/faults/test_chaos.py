@@ -1,8 +1,7 @@
 """A bounded chaos run: 200 trials, a seeded schedule of machine kills (a node removed and a
 fresh one added) and one kill -9 of the head. Afterwards: no measurement lost, none doubled,
-every value equal to the objective's, and the ladder invariants of ASHA (Li et al., MLSys
-2020) hold on what was recorded: every trial at rung k+1 has a result at rung k, and no
-more than floor(n_k / eta) trials left rung k."""
+every value equal to the objective's, and what was recorded is a ladder: every trial at
+rung k+1 has a result at rung k."""
 
 from __future__ import annotations
 
@@ -88,6 +87,4 @@ def test_chaos_with_node_kills_and_a_head_kill(tmp_path: Path) -> None:
     per_rung = finals.groupby("rung")["trial"].apply(set)
     for k in range(1, int(per_rung.index.max()) + 1):
         assert per_rung[k] <= per_rung[k - 1], f"a trial reached rung {k} without a result at rung {k - 1}"
-        # Promotions out of rung k never exceed floor(n_k / eta): at the end n_k is largest.
-        assert len(per_rung[k]) <= len(per_rung[k - 1]) // 3
     assert (table["status"].isin(["parked", "done"])).all()
