@@ -103,8 +103,8 @@ class SearchDriver:
         clock: Callable[[], float] = time.monotonic,
         persist_seconds: float = 5.0,
         progress_seconds: float = 0.5,
-        prefetch: float = 1.0,
-        flush_seconds: float = 0.05,
+        prefetch: float = 2.0,
+        flush_seconds: float = 0.02,
         health: HealthSettings = HealthSettings(),
     ) -> None:
         from rungway.scheduler.store import Store
