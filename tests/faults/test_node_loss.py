@@ -58,14 +58,17 @@ def test_removing_a_node_while_segments_run_on_it_loses_nothing(tmp_path: Path, 
         lost_before = []
 
         def remove_when_busy() -> None:
-            deadline = time.monotonic() + 60
-            while time.monotonic() < deadline:
-                running_there = [r for r in list(driver.running.values()) if r.node == doomed_id]
-                if len(running_there) >= 1 and driver.segments >= 6:
-                    lost_before.append(len(running_there))
-                    cluster.remove_node(doomed, allow_graceful=False)
-                    removed.set()
-                    return
+            # Kill the 2-CPU node once it has run segments and the search is well under way:
+            # it then has segments running (4 CPUs, and the head keeps them all busy).
+            deadline = time.monotonic() + 240  # bounded; a loaded machine is slow to start Ray workers
+            while time.monotonic() < deadline and not driver.core.statistics()["states"]["done"] >= 24:
+                if driver.segments >= 6:
+                    frame = driver.files.read_measurements()
+                    if not frame.empty and frame["node"].str.endswith(doomed_id[:8]).any():
+                        lost_before.append(len(driver.running))
+                        cluster.remove_node(doomed, allow_graceful=False)
+                        removed.set()
+                        return
                 time.sleep(0.05)
 
         killer = threading.Thread(target=remove_when_busy, daemon=True)
