@@ -41,7 +41,7 @@ def test_removing_a_node_while_segments_run_on_it_loses_nothing(tmp_path: Path, 
     from ray.cluster_utils import Cluster
 
     _worker_path()
-    monkeypatch.setenv("RUNGWAY_TEST_SLEEP", "0.4")
+    monkeypatch.setenv("RUNGWAY_TEST_SLEEP", "0.8")  # long enough that the node is never idle
     if ray.is_initialized():
         ray.shutdown()
     cluster = Cluster(initialize_head=True, head_node_args={"num_cpus": 1, "include_dashboard": False})
@@ -61,7 +61,7 @@ def test_removing_a_node_while_segments_run_on_it_loses_nothing(tmp_path: Path, 
             # Kill the 2-CPU node once it has run segments and the search is well under way:
             # it then has segments running (4 CPUs, and the head keeps them all busy).
             deadline = time.monotonic() + 240  # bounded; a loaded machine is slow to start Ray workers
-            while time.monotonic() < deadline and not driver.core.statistics()["states"]["done"] >= 24:
+            while time.monotonic() < deadline:
                 if driver.segments >= 6:
                     frame = driver.files.read_measurements()
                     if not frame.empty and frame["node"].str.endswith(doomed_id[:8]).any():
