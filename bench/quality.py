@@ -264,6 +264,11 @@ def median_curve(curves: list[list[list[float]]], upto: float, steps: int = 120)
     return out
 
 
+def _fmt(value: float | None) -> str:
+    """A score for the progress line; None when a method had no result in the budget."""
+    return "none" if value is None else f"{value:.4f}"
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--quick", action="store_true", help="2 seeds, 10 CPU-seconds per search")
@@ -372,7 +377,7 @@ def main(argv: list[str] | None = None) -> int:
                 f = methods[m]
                 reach = "  ".join(f"cpu->{k} {v['cpu_s']['median'] if v['cpu_s']['median'] is None else round(v['cpu_s']['median'], 2)}"
                                   f" ({v['reached']})" for k, v in f["to_target"].items())
-                print(f"  {m:<13} best@equal {f['best_at_equal_cpu']['median']:.4f}  final {f['best_final']['median']:.4f}  "
+                print(f"  {m:<13} best@equal {_fmt(f['best_at_equal_cpu']['median'])}  final {_fmt(f['best_final']['median'])}  "
                       f"{reach}", flush=True)
     finally:
         ray.shutdown()
