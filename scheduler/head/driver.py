@@ -479,8 +479,12 @@ class SearchDriver:
     def _entry_for(self, c: Completion, run: _Running) -> dict[str, Any]:
         """The journal entry for one completion (side records, e.g. tracebacks, written first)."""
         now = self.clock()
-        base = {"t": c.trial, "a": c.attempt, "cpu": self.spec.resources.cpus * max(0.0, now - run.submitted), "el": self.elapsed}
         s = c.summary
+        # CPU time is charged from the worker's own start and end: a prefetched segment that
+        # waited in Ray's queue used no CPU. Without an answer, the time since submission is
+        # the upper bound.
+        ran = s.ended - s.started if s is not None and s.ended >= s.started > 0 else now - run.submitted
+        base = {"t": c.trial, "a": c.attempt, "cpu": self.spec.resources.cpus * max(0.0, ran), "el": self.elapsed}
         if s is None:
             if c.lost is not None:
                 return {"e": "lost", **base, "why": c.lost}
