@@ -88,3 +88,19 @@ def test_running_a_finished_search_again_is_a_no_op(tmp_path: Path) -> None:
     again = before.run()
     assert again.finished and again.segments == first.segments
     assert len(before.files.read_trials()) == 6
+
+
+def test_cpu_seconds_are_charged_from_the_workers_own_start_and_end(tmp_path: Path) -> None:
+    """A segment is charged cpus x (ended - started) as the worker measured it, not the time
+    it spent queued after submission."""
+    from rungway.workers.runner import run_segment
+
+    def run(order):  # the real runner, with its clock stretched: each segment "ran" 10 s
+        ticks = iter([1000.0, 1010.0, 1010.0, 1010.0, 1010.0, 1010.0])
+        return run_segment(order, clock=lambda: next(ticks, 1010.0))
+
+    text = spec_text("cpu", objective="objectives_run:plain", trials=3, max_budget=3)
+    driver = SearchDriver(parse_spec(text), text, str(tmp_path), InlineExecutor(cpus=1, run=run))
+    report = driver.run()
+    assert report.finished
+    assert driver.cpu_seconds == pytest.approx(10.0 * report.segments)
