@@ -260,34 +260,10 @@ def lab_cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[LabCluster
 def spec_text(name: str, objective: str = "objectives_run:sleepy", *, trials: int = 18, mode: str = "asha",
               min_budget: int = 1, max_budget: int = 9, seed: int = 3) -> str:
     """A search of one real parameter ``x`` in [0, 1] (the objectives in objectives_run)."""
-    return f"""
-name = "{name}"
-objective = "{objective}"
-metric = "loss"
-direction = "minimize"
-seed = {seed}
+    from runhelpers import spec_text as run_spec_text
 
-[ladder]
-min = {min_budget}
-max = {max_budget}
-eta = 3
-mode = "{mode}"
-
-[sampler]
-kind = "random"
-
-[limits]
-trials = {trials}
-max_crashes = 1
-
-[resources]
-cpus = 1
-
-[space.x]
-kind = "real"
-lower = 0.0
-upper = 1.0
-"""
+    return run_spec_text(name, objective, mode=mode, trials=trials, min_budget=min_budget,
+                         max_budget=max_budget, seed=seed)
 
 
 __all__ = ["LabCluster", "lab_cluster", "spec_text", "start_lab_cluster"]

@@ -15,13 +15,13 @@ def _worker_path() -> None:
 
 
 def spec_text(name: str, objective: str = "objectives_run:resumable", *, mode: str = "asha", trials: int = 20,
-              min_budget: int = 1, max_budget: int = 9, extra: str = "") -> str:
+              min_budget: int = 1, max_budget: int = 9, extra: str = "", seed: int = 3) -> str:
     return f"""
 name = "{name}"
 objective = "{objective}"
 metric = "loss"
 direction = "minimize"
-seed = 3
+seed = {seed}
 
 [ladder]
 min = {min_budget}
