@@ -21,29 +21,31 @@ Budget = int | float
 
 @ray.remote(num_cpus=0, max_restarts=0)
 class Relay:
-    """Head-side mailbox for running segments (lives on the head node)."""
+    """Head-side mailbox for running segments (lives on the head node). One relay serves every
+    search of a head, so posts are keyed by (search, trial, attempt)."""
 
     def __init__(self) -> None:
-        self._milestones: list[tuple[int, int, int, float]] = []
-        self._beats: dict[tuple[int, int], tuple[Budget, str]] = {}
-        self._verdicts: dict[tuple[int, int, int], bool] = {}
-        self._yields: set[tuple[int, int]] = set()
+        self._milestones: list[tuple[str, int, int, int, float]] = []
+        self._beats: dict[tuple[str, int, int], tuple[Budget, str]] = {}
+        self._verdicts: dict[tuple[str, int, int, int], bool] = {}
+        self._yields: set[tuple[str, int, int]] = set()
 
-    def milestone(self, trial: int, attempt: int, rung: int, value: float) -> None:
-        self._milestones.append((trial, attempt, rung, value))
+    def milestone(self, search: str, trial: int, attempt: int, rung: int, value: float) -> None:
+        self._milestones.append((search, trial, attempt, rung, value))
 
-    def verdict(self, trial: int, attempt: int, rung: int) -> bool | None:
-        return self._verdicts.pop((trial, attempt, rung), None)
+    def verdict(self, search: str, trial: int, attempt: int, rung: int) -> bool | None:
+        return self._verdicts.pop((search, trial, attempt, rung), None)
 
-    def beat(self, trial: int, attempt: int, budget: Budget, node: str = "") -> None:
+    def beat(self, search: str, trial: int, attempt: int, budget: Budget, node: str = "") -> None:
         """The segment is alive; ``budget`` is how far it got (-1: unknown), ``node`` where."""
-        previous = self._beats.get((trial, attempt))
+        key = (search, trial, attempt)
+        previous = self._beats.get(key)
         if budget < 0 and previous is not None:
             budget = previous[0]
-        self._beats[(trial, attempt)] = (budget, node)
+        self._beats[key] = (budget, node)
 
-    def should_yield(self, trial: int, attempt: int) -> bool:
-        return (trial, attempt) in self._yields
+    def should_yield(self, search: str, trial: int, attempt: int) -> bool:
+        return (search, trial, attempt) in self._yields
 
     # ---- head side ----
     def drain(self) -> dict[str, Any]:
@@ -51,15 +53,15 @@ class Relay:
         beats, self._beats = self._beats, {}
         return {"milestones": milestones, "beats": beats}
 
-    def decide(self, verdicts: list[tuple[int, int, int, bool]]) -> None:
-        for trial, attempt, rung, go in verdicts:
-            self._verdicts[(trial, attempt, rung)] = go
+    def decide(self, verdicts: list[tuple[str, int, int, int, bool]]) -> None:
+        for search, trial, attempt, rung, go in verdicts:
+            self._verdicts[(search, trial, attempt, rung)] = go
 
-    def ask_to_yield(self, trial: int, attempt: int) -> None:
-        self._yields.add((trial, attempt))
+    def ask_to_yield(self, search: str, trial: int, attempt: int) -> None:
+        self._yields.add((search, trial, attempt))
 
-    def forget(self, trial: int, attempt: int) -> None:
-        self._yields.discard((trial, attempt))
+    def forget(self, search: str, trial: int, attempt: int) -> None:
+        self._yields.discard((search, trial, attempt))
 
 
 class _Beater:
@@ -67,7 +69,7 @@ class _Beater:
 
     def __init__(self, beat_seconds: float) -> None:
         self.beat_seconds = beat_seconds
-        self.current: tuple[Any, int, int, str] | None = None
+        self.current: tuple[Any, str, int, int, str] | None = None
         self.lock = threading.Lock()
         self.thread = threading.Thread(target=self._loop, name="rungway-beat", daemon=True)
         self.thread.start()
@@ -78,9 +80,9 @@ class _Beater:
             with self.lock:
                 current = self.current
             if current is not None:
-                relay, trial, attempt, node = current
+                relay, search, trial, attempt, node = current
                 try:
-                    relay.beat.remote(trial, attempt, -1, node)
+                    relay.beat.remote(search, trial, attempt, -1, node)
                 except Exception:  # the head is gone; the segment finishes on its own
                     pass
 
@@ -96,8 +98,10 @@ class ActorLink:
     add how far it got.
     """
 
-    def __init__(self, relay: Any, node: str = "", beat_seconds: float = 2.0, poll_seconds: float = 0.02) -> None:
+    def __init__(self, relay: Any, node: str = "", beat_seconds: float = 2.0, poll_seconds: float = 0.02,
+                 search: str = "") -> None:
         self._relay = relay
+        self._search = search
         self._node = node
         self._beat_seconds = beat_seconds
         self._poll_seconds = poll_seconds
@@ -108,7 +112,7 @@ class ActorLink:
         if _beater is None:
             _beater = _Beater(self._beat_seconds)
         with _beater.lock:
-            _beater.current = (self._relay, trial, attempt, self._node)
+            _beater.current = (self._relay, self._search, trial, attempt, self._node)
 
     def stop(self) -> None:
         if _beater is not None:
@@ -116,20 +120,20 @@ class ActorLink:
                 _beater.current = None
 
     def milestone(self, trial: int, attempt: int, rung: int, value: float) -> bool:
-        ray.get(self._relay.milestone.remote(trial, attempt, rung, value))
+        ray.get(self._relay.milestone.remote(self._search, trial, attempt, rung, value))
         delay = self._poll_seconds
         while True:
-            answer = ray.get(self._relay.verdict.remote(trial, attempt, rung))
+            answer = ray.get(self._relay.verdict.remote(self._search, trial, attempt, rung))
             if answer is not None:
                 return bool(answer)
             time.sleep(delay)
             delay = min(delay * 1.5, 0.5)
 
     def should_yield(self, trial: int, attempt: int) -> bool:
-        return bool(ray.get(self._relay.should_yield.remote(trial, attempt)))
+        return bool(ray.get(self._relay.should_yield.remote(self._search, trial, attempt)))
 
     def beat(self, trial: int, attempt: int, budget: Budget) -> None:
         now = time.monotonic()
         if now - self._last_beat >= self._beat_seconds / 2:
             self._last_beat = now
-            self._relay.beat.remote(trial, attempt, budget, self._node)  # fire and forget
+            self._relay.beat.remote(self._search, trial, attempt, budget, self._node)  # fire and forget

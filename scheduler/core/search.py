@@ -404,6 +404,54 @@ class SearchCore:
             self._brackets[trial.bracket].boards[trial.rung].withdraw((trial.loss, tid))
         return Cancelled(tid)
 
+    def backlog(self, limit: int) -> int:
+        """How many segments ``ask`` would hand out now, before any new result, up to ``limit``.
+
+        An estimate, exact where it matters: it is 0 exactly when ``ask`` would hand out no
+        segment. It counts requeued trials, one promotion per rung with one ready (a promotion
+        can make the next one ready), the barrier's promotions in the synchronous modes, and
+        new trials while admitting (the trial limit left, or ``limit`` when there is none; a
+        sampler that runs dry makes that an overcount). A fair-sharing head uses it as the
+        search's demand without asking, so nothing is committed early.
+        """
+        count = len(self._queue)
+        if count >= limit:
+            return limit
+        if self._synchronous:
+            return min(count + self._synchronous_backlog(), limit)
+        for bracket in self._brackets:
+            count += sum(1 for _k, board in bracket.descending if board.ready is not None)
+        if self._admitting:
+            left = limit if self._max_trials is None else self._max_trials - len(self._trials)
+            count += max(0, left)
+        return min(count, limit)
+
+    def _synchronous_backlog(self) -> int:
+        """``backlog``'s count beyond the queue in the synchronous modes, read-only: the new
+        trials the open bracket still admits, else what its barrier (or the next bracket)
+        would release."""
+        left = None if self._max_trials is None else self._max_trials - len(self._trials)
+        for index in range(self._cursor, len(self._brackets)):
+            bracket = self._brackets[index]
+            assert bracket.counts is not None
+            if bracket.level == 0 and self._admitting and bracket.created < bracket.counts[0]:
+                new = bracket.counts[0] - bracket.created
+                new = new if left is None else min(new, left)
+                if new > 0:
+                    return new
+            if bracket.outstanding > 0:
+                return 0  # the barrier
+            board = bracket.boards[bracket.level]
+            if bracket.level < bracket.top and len(board):
+                keep = len(board) // self._eta
+                promoted = sum(
+                    1 for rank, (_loss, tid) in enumerate(board.results())
+                    if rank < keep and self._trials[tid].state == PARKED and self._trials[tid].rung == bracket.level
+                )
+                if promoted:
+                    return promoted
+        return 0
+
     def stop_admitting(self) -> None:
         """Start no new trials from now on (limits reached, or the user asked)."""
         self._admitting = False

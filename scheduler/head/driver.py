@@ -29,7 +29,7 @@ from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 
@@ -45,7 +45,7 @@ from .executor import Completion, Executor
 from .estimate import TimeLeft
 from .journal import Journal
 
-__all__ = ["SearchDriver", "RunReport", "HEAD_STATE", "HealthSettings"]
+__all__ = ["SearchDriver", "RunReport", "HEAD_STATE", "HealthSettings", "SegmentListener"]
 
 log = logging.getLogger("rungway.head")
 
@@ -89,6 +89,19 @@ class _Running:
     progress: float = -1.0
 
 
+class SegmentListener(Protocol):
+    """Told of every segment this driver starts and of how each one ended (a shared head
+    uses it for fair sharing and for its CPU ledger)."""
+
+    def started(self, search: str, trial: int, attempt: int, rung: int) -> None: ...
+
+    def ended(self, search: str, trial: int, attempt: int, rung: int, outcome: str, cpu_seconds: float,
+              summary: SegmentSummary | None, node: str) -> None: ...
+
+
+_OUTCOMES = {"rep": "result", "done": "result", "yield": "yielded", "lost": "lost", "crash": "crashed"}
+
+
 class SearchDriver:
     """Runs one search until it drains, hits a limit, is interrupted or meets a storage fault."""
 
@@ -106,6 +119,7 @@ class SearchDriver:
         prefetch: float = 2.0,
         flush_seconds: float = 0.02,
         health: HealthSettings = HealthSettings(),
+        listener: SegmentListener | None = None,
     ) -> None:
         from rungway.scheduler.store import Store
 
@@ -124,6 +138,7 @@ class SearchDriver:
         # Finished segments' results are gathered for up to this long and written as one file.
         self.flush_seconds = flush_seconds
         self.health = health
+        self.listener = listener
         self.plan = spec.plan()
         self.running: dict[tuple[int, int], _Running] = {}
         self.budget_done = 0.0
@@ -317,54 +332,79 @@ class SearchDriver:
         return self.elapsed_before + (self.clock() - self._started if hasattr(self, "_started") else 0.0)
 
     def run(self, should_stop: Callable[[], bool] = lambda: False) -> RunReport:
+        """Run in the foreground, filling every slot of the executor, until the search ends."""
+        self.begin()
+        while not self.over:
+            if should_stop():
+                self.report.interrupted = True
+                break
+            self.step(wait=0.02)
+        return self.end()
+
+    # A head that shares its executor among searches (``service.lab``) drives these three
+    # itself: ``step`` with ``grant`` starts at most that many segments and waits for nothing.
+
+    def begin(self) -> None:
         self._started = self.clock()
-        last_persist = last_progress = last_health = self._started
-        report = RunReport(finished=False)
-        drained = False
-        pending: list[Completion] = []  # finished segments whose results wait for the next write
-        pending_since: float | None = None
+        self._last_persist = self._last_progress = self._last_health = self._started
+        self.report = RunReport(finished=False)
+        self.over = False
+        self._drained = False
+        self._pending: list[Completion] = []  # finished segments whose results wait for the next write
+        self._pending_since: float | None = None
+
+    def step(self, wait: float = 0.0, grant: int | None = None) -> None:
+        """One turn of the loop: fill, collect finished segments, write, check health.
+        Sets ``over`` when the search drained or paused on a storage fault."""
+        report = self.report
         try:
-            while True:
-                if should_stop():
-                    report.interrupted = True
-                    break
-                self._check_limits()
-                drained = self._fill(self.clock()) or drained
-                if drained and not self.running and not pending:
-                    report.finished = True
-                    break
-                pending.extend(self.executor.wait(timeout=0.02 if self.running else 0.0))
-                now = self.clock()
-                if pending and pending_since is None:
-                    pending_since = now
-                if pending and (
-                    now - pending_since >= self.flush_seconds  # type: ignore[operator]
-                    or len(pending) >= 256
-                    or self.executor.in_flight() == 0
-                ):
-                    reason = self._flush(pending)
-                    pending, pending_since = [], None
-                    if reason:
-                        report.paused_reason = reason
-                        break
-                self._relay_milestones()
-                self._commit()
-                if now - last_health >= self.health.check_every:
-                    self._check_health(now)
-                    last_health = now
-                if self.progress is not None:
-                    self.time_left.maybe_update(now, self._slots(prefetch=False))
-                if self.progress is not None and now - last_progress >= self.progress_seconds:
-                    self.progress(self.statistics())
-                    last_progress = now
-                if now - last_persist >= self.persist_seconds:
-                    self.persist()
-                    self.files.compact_measurements(min_parts=64)
-                    last_persist = now
+            self._check_limits()
+            self._drained = self._fill(self.clock(), grant) or self._drained
+            if self._drained and not self.running and not self._pending:
+                report.finished = True
+                self.over = True
+                return
+            self._pending.extend(self.executor.wait(timeout=wait if self.running else 0.0))
+            now = self.clock()
+            pending = self._pending
+            if pending and self._pending_since is None:
+                self._pending_since = now
+            if pending and (
+                now - self._pending_since >= self.flush_seconds  # type: ignore[operator]
+                or len(pending) >= 256
+                or self.executor.in_flight() == 0
+                or grant is not None  # shared head: results free the team's CPUs; no grouping
+            ):
+                self._pending, self._pending_since = [], None
+                reason = self._flush(pending)
+                if reason:
+                    report.paused_reason = reason
+                    self.over = True
+                    return
+            self._relay_milestones()
+            self._commit()
+            if now - self._last_health >= self.health.check_every:
+                self._check_health(now)
+                self._last_health = now
+            if self.progress is not None:
+                self.time_left.maybe_update(now, self._slots(prefetch=False))
+            if self.progress is not None and now - self._last_progress >= self.progress_seconds:
+                self.progress(self.statistics())
+                self._last_progress = now
+            if now - self._last_persist >= self.persist_seconds:
+                self.persist()
+                self.files.compact_measurements(min_parts=64)
+                self._last_persist = now
         except StorageError as exc:
             report.paused_reason = str(exc)
+            self.over = True
+
+    def end(self) -> RunReport:
+        """Stop what runs (requeued from checkpoints), write the final state, report."""
+        report = self.report
         try:
-            if pending and not report.paused_reason:  # results already in hand are kept, not redone
+            if self._pending and not report.paused_reason:  # results already in hand are kept, not redone
+                pending, self._pending = self._pending, []
                 self._flush(pending)
             self._stop_running()
             self.persist()
@@ -382,6 +422,10 @@ class SearchDriver:
             self.progress(report.statistics)
         return report
 
+    def backlog(self, limit: int) -> int:
+        """Segments this search could start now (see ``SearchCore.backlog``)."""
+        return self.core.backlog(limit)
+
     def _slots(self, prefetch: bool = True) -> int:
         """Segments to keep submitted: every slot of the cluster, plus the prefetch: at least
         what the cluster finishes in two fill intervals, so that grouped fills starve no CPU."""
@@ -396,16 +440,24 @@ class SearchDriver:
         rate = self._segments_this_run / elapsed
         return slots + max(1, int(slots * self.prefetch), math.ceil(rate * self.flush_seconds * 2))
 
-    def _fill(self, now: float) -> bool:
-        """Submit segments while slots are free; True once the core says the search drained.
-        The segments are journaled (one write) before any is submitted. Fills are grouped
-        (one journal write per ``flush_seconds``) unless a CPU would otherwise sit idle."""
-        in_flight = self.executor.in_flight()
-        urgent = in_flight < self._slots(prefetch=False)
-        if not urgent and now - self._last_fill < self.flush_seconds:
-            return False
-        self._last_fill = now
-        free = self._slots() - in_flight
+    def _fill(self, now: float, grant: int | None = None) -> bool:
+        """Submit segments while slots are free (or up to ``grant``); True once the core says
+        the search drained. The segments are journaled (one write) before any is submitted.
+        Fills are grouped (one journal write per ``flush_seconds``) unless a CPU would
+        otherwise sit idle."""
+        if grant is not None:
+            free = grant
+            if not self.running and self.core.active == 0 and self.core.backlog(1) == 0:
+                # Nothing to start and nothing running: ask once to learn whether it drained
+                # (with a backlog of 0 the core hands out no segment).
+                return isinstance(self.core.ask(), Drained)
+        else:
+            in_flight = self.executor.in_flight()
+            urgent = in_flight < self._slots(prefetch=False)
+            if not urgent and now - self._last_fill < self.flush_seconds:
+                return False
+            self._last_fill = now
+            free = self._slots() - in_flight
         segments: list[Segment] = []
         drained = False
         while free > 0:
@@ -444,6 +496,33 @@ class SearchDriver:
             seg.trial, seg.attempt, seg.rung, float(seg.start_budget), float(seg.target_budget), now, last_progress=now
         )
         self.executor.submit(order, self.spec.resources.cpus, self.spec.resources.memory_mb)
+        if self.listener is not None:
+            self.listener.started(self.spec.name, seg.trial, seg.attempt, seg.rung)
+
+    def _ended(self, run: _Running, entry: dict[str, Any], summary: SegmentSummary | None = None) -> None:
+        if self.listener is not None:
+            outcome = _OUTCOMES.get(entry["e"], "other")
+            if summary is not None and summary.outcome == "stopped":
+                outcome = "stopped"
+            self.listener.ended(self.spec.name, run.trial, run.attempt, run.rung, outcome, entry.get("cpu", 0.0),
+                                summary, (summary.node if summary is not None else "") or run.node)
+
+    def stop_segment(self, trial: int, attempt: int, why: str) -> bool:
+        """Stop one running segment now and requeue its trial from its checkpoint (a preempted
+        segment past its deadline, or a paused search's). False if it does not run."""
+        run = self.running.pop((trial, attempt), None)
+        if run is None:
+            return False
+        self.executor.cancel(trial, attempt)
+        entry = {"e": "lost", "t": trial, "a": attempt, "why": why,
+                 "cpu": self.spec.resources.cpus * max(0.0, self.clock() - run.submitted), "el": self.elapsed}
+        self._log(entry)
+        self._commit()
+        self._ended(run, entry)
+        return True
+
+    def running_segments(self) -> list[tuple[int, int]]:
+        return list(self.running)
 
     def _flush(self, completions: list[Completion]) -> str | None:
         """Store the rung results gathered, journal them, then apply them to the core.
@@ -468,6 +547,7 @@ class SearchDriver:
             if c.summary is not None and c.summary.outcome == "result":
                 self.time_left.record(run.target_budget - run.start_budget, c.summary.ended - c.summary.started)
             out = self._log(entry)
+            self._ended(run, entry, c.summary)
             if entry["e"] in ("lost", "crash"):
                 self._count_node_failure(run.node)
             if isinstance(out, Failed):
@@ -578,6 +658,7 @@ class SearchDriver:
                             "requeued" if kind == "lost" else "counted as a crash")
             for entry, run in entries:
                 self._log(entry)
+                self._ended(run, entry)
                 self._count_node_failure(run.node)
         for node, until in list(self.quarantined.items()):
             if until <= now:
@@ -617,12 +698,16 @@ class SearchDriver:
         """Interrupted or paused: cancel what runs and requeue it (its checkpoints stay)."""
         if not self.running:
             return
-        entries = [{"e": "lost", "t": t, "a": a, "why": "the head stopped"} for (t, a) in self.running]
+        now = self.clock()
+        runs = list(self.running.values())
+        entries = [{"e": "lost", "t": r.trial, "a": r.attempt, "why": "the head stopped",
+                    "cpu": self.spec.resources.cpus * max(0.0, now - r.submitted)} for r in runs]
         for (trial, attempt) in list(self.running):
             self.executor.cancel(trial, attempt)
         self.running.clear()
-        for entry in entries:
+        for entry, run in zip(entries, runs, strict=True):
             self._log(entry)
+            self._ended(run, entry)
         self._commit()
 
     # ---- reading --------------------------------------------------------------------------

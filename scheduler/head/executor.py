@@ -19,7 +19,7 @@ from typing import Any, Protocol
 
 from rungway.workers.runner import SegmentOrder, SegmentSummary, run_segment
 
-__all__ = ["Completion", "Executor", "InlineExecutor", "RayExecutor", "classify_ray_error"]
+__all__ = ["Completion", "Executor", "InlineExecutor", "RayExecutor", "RayPool", "RayLane", "InlinePool", "classify_ray_error"]
 
 log = logging.getLogger("rungway.head")
 
@@ -113,6 +113,37 @@ class InlineExecutor:
         return None
 
 
+class InlinePool:
+    """A pool of :class:`InlineExecutor` lanes, one per search (a shared head without Ray)."""
+
+    def __init__(self, cpus: float = 2.0, memory_mb: int = 16_384,
+                 run: Callable[[SegmentOrder], SegmentSummary] | None = None) -> None:
+        self.cpus = cpus
+        self.memory = memory_mb
+        self._run = run
+        self.lanes: dict[str, InlineExecutor] = {}
+
+    def lane(self, search: str) -> InlineExecutor:
+        if search not in self.lanes:
+            self.lanes[search] = InlineExecutor(self.cpus, self._run)
+        return self.lanes[search]
+
+    def forget(self, search: str) -> None:
+        self.lanes.pop(search, None)
+
+    def poll(self, timeout: float) -> int:
+        return 0
+
+    def capacity(self) -> float:
+        return self.cpus
+
+    def memory_mb(self) -> int:
+        return self.memory
+
+    def close(self) -> None:
+        self.lanes.clear()
+
+
 def classify_ray_error(exc: BaseException) -> tuple[str, str]:
     """("lost" | "crashed", reason) for an exception Ray raised when fetching a result.
 
@@ -145,8 +176,13 @@ def classify_ray_error(exc: BaseException) -> tuple[str, str]:
     return "crashed", f"{type(exc).__name__}: {exc}"
 
 
-class RayExecutor:
-    """Segments as Ray tasks on the cluster ``ray.init`` connected to."""
+class RayPool:
+    """The Ray side of a head: one relay actor and one wait over every search's tasks.
+
+    Each search drives a :class:`RayLane` (an :class:`Executor`); the pool routes finished
+    tasks and relay posts to the lane of the search they belong to. A head with one search
+    uses :class:`RayExecutor`, a lane with a pool of its own.
+    """
 
     def __init__(self, relay: Any | None = None, spread: bool = False) -> None:
         import ray
@@ -157,16 +193,21 @@ class RayExecutor:
         self._task = segment_task
         # Tasks find the relay by name (an actor handle as a task argument costs each task a
         # round trip to the control store; a name is looked up once per worker process).
-        self._relay_name = f"rungway-relay-{uuid.uuid4().hex[:12]}"
+        self.relay_name = f"rungway-relay-{uuid.uuid4().hex[:12]}"
         self._relay = relay if relay is not None else self._start_relay()
-        self._refs: dict[Any, tuple[int, int]] = {}
-        self._by_trial: dict[tuple[int, int], Any] = {}
+        self._refs: dict[Any, tuple[str, int, int]] = {}
+        self._by_key: dict[tuple[str, int, int], Any] = {}
         self._strategy = "SPREAD" if spread else "DEFAULT"
         self._capacity_checked = 0.0
         self._capacity = 0.0
         self._variants: dict[tuple[float, int], Any] = {}
+        self._avoid_by_lane: dict[str, frozenset[str]] = {}
         self._avoid: frozenset[str] = frozenset()
         self._drain_ref: Any = None
+        self._drained_at = 0.0
+        self._dead: set[str] = set()
+        self._dead_checked = 0.0
+        self.lanes: dict[str, RayLane] = {}
 
     def _start_relay(self) -> Any:
         """The relay lives on the head's own node, which dies only with the head."""
@@ -176,8 +217,21 @@ class RayExecutor:
 
         here = self._ray.get_runtime_context().get_node_id()
         return Relay.options(
-            name=self._relay_name, scheduling_strategy=NodeAffinitySchedulingStrategy(here, soft=False)
+            name=self.relay_name, scheduling_strategy=NodeAffinitySchedulingStrategy(here, soft=False)
         ).remote()
+
+    def lane(self, search: str) -> RayLane:
+        lane = self.lanes.get(search)
+        if lane is None:
+            lane = self.lanes[search] = RayLane(self, search)
+        return lane
+
+    def forget(self, search: str) -> None:
+        """The search left the head: cancel what it still runs and drop its lane."""
+        lane = self.lanes.pop(search, None)
+        if lane is not None:
+            lane.close()
+        self._set_avoid(search, set())
 
     def capacity(self) -> float:
         now = time.monotonic()
@@ -186,7 +240,10 @@ class RayExecutor:
             self._capacity_checked = now
         return self._capacity
 
-    def submit(self, order: SegmentOrder, cpus: float, memory_mb: int) -> None:
+    def memory_mb(self) -> int:
+        return int(self._ray.cluster_resources().get("memory", 0.0) // (1024 * 1024))
+
+    def submit(self, search: str, order: SegmentOrder, cpus: float, memory_mb: int) -> None:
         task = self._variants.get((cpus, memory_mb))
         if task is None:  # .options() is not free: one variant per resource shape and node set
             options: dict[str, Any] = {"num_cpus": cpus, "scheduling_strategy": self._strategy}
@@ -199,80 +256,172 @@ class RayExecutor:
             if memory_mb:
                 options["memory"] = int(memory_mb) * 1024 * 1024
             task = self._variants[(cpus, memory_mb)] = self._task.options(**options)
-        ref = task.remote(order, self._relay_name)
-        self._refs[ref] = (order.trial, order.attempt)
-        self._by_trial[(order.trial, order.attempt)] = ref
+        ref = task.remote(order, self.relay_name)
+        key = (search, order.trial, order.attempt)
+        self._refs[ref] = key
+        self._by_key[key] = ref
 
-    def wait(self, timeout: float) -> list[Completion]:
+    def poll(self, timeout: float) -> int:
+        """Wait up to ``timeout`` for any task; hand what finished to its lane. Returns how many."""
         if not self._refs:
-            time.sleep(min(timeout, 0.05))
-            return []
+            if timeout > 0:
+                time.sleep(min(timeout, 0.05))
+            return 0
         refs = list(self._refs)
         ready, _ = self._ray.wait(refs, num_returns=1, timeout=timeout)
         if not ready:
-            return []
+            return 0
         ready, _ = self._ray.wait(refs, num_returns=len(refs), timeout=0)
-        out = []
         for ref in ready:
-            trial, attempt = self._refs.pop(ref)
-            self._by_trial.pop((trial, attempt), None)
+            search, trial, attempt = self._refs.pop(ref)
+            self._by_key.pop((search, trial, attempt), None)
             try:
-                summary = self._ray.get(ref)
+                done = Completion(trial, attempt, summary=self._ray.get(ref))
             except Exception as exc:  # translated right here, the one place that knows Ray
                 kind, reason = classify_ray_error(exc)
-                if kind == "lost":
-                    out.append(Completion(trial, attempt, lost=reason))
-                else:
-                    out.append(Completion(trial, attempt, crashed=reason))
-                continue
-            out.append(Completion(trial, attempt, summary=summary))
-        return out
+                done = Completion(trial, attempt, lost=reason) if kind == "lost" else Completion(trial, attempt, crashed=reason)
+            lane = self.lanes.get(search)
+            if lane is not None:
+                lane.inbox.append(done)
+        return len(ready)
 
-    def cancel(self, trial: int, attempt: int) -> None:
-        ref = self._by_trial.get((trial, attempt))
+    def cancel(self, search: str, trial: int, attempt: int) -> None:
+        ref = self._by_key.get((search, trial, attempt))
         if ref is not None:
             self._ray.cancel(ref, force=True)
 
     def in_flight(self) -> int:
         return len(self._refs)
 
-    def drain_link(self) -> dict[str, Any]:
-        """Never blocks: takes the answer of the drain asked for last time, if it is in, and
-        asks for the next one (the relay's start-up or a busy relay costs the loop nothing)."""
-        empty: dict[str, Any] = {"milestones": [], "beats": {}}
+    def drain_link(self) -> None:
+        """Never blocks: takes the relay's answer to the drain asked for last time, if it is
+        in, routes it to the lanes, and asks for the next one (at most every few ms)."""
+        now = time.monotonic()
+        if now - self._drained_at < 0.005:
+            return
+        self._drained_at = now
         if self._drain_ref is not None:
             ready, _ = self._ray.wait([self._drain_ref], timeout=0)
             if not ready:
-                return empty
+                return
             try:
                 result = self._ray.get(self._drain_ref)
             except Exception as exc:  # the relay died with its node; start another
                 log.warning("the head's relay actor failed (%s); starting a new one", type(exc).__name__)
-                self._relay_name = f"rungway-relay-{uuid.uuid4().hex[:12]}"
+                self.relay_name = f"rungway-relay-{uuid.uuid4().hex[:12]}"
                 self._relay = self._start_relay()
-                result = empty
-            self._drain_ref = self._relay.drain.remote()
-            return result
+                result = {"milestones": [], "beats": {}}
+            for search, trial, attempt, rung, value in result["milestones"]:
+                lane = self.lanes.get(search)
+                if lane is not None:
+                    lane.milestones.append((trial, attempt, rung, value))
+            for (search, trial, attempt), post in result["beats"].items():
+                lane = self.lanes.get(search)
+                if lane is not None:
+                    lane.beats[(trial, attempt)] = post
         self._drain_ref = self._relay.drain.remote()
-        return empty
 
-    def decide(self, verdicts: list[tuple[int, int, int, bool]]) -> None:
+    def decide(self, search: str, verdicts: list[tuple[int, int, int, bool]]) -> None:
         if verdicts:
-            self._relay.decide.remote(verdicts)
+            self._relay.decide.remote([(search, t, a, r, go) for t, a, r, go in verdicts])
 
-    def ask_to_yield(self, trial: int, attempt: int) -> None:
-        self._relay.ask_to_yield.remote(trial, attempt)
+    def ask_to_yield(self, search: str, trial: int, attempt: int) -> None:
+        self._relay.ask_to_yield.remote(search, trial, attempt)
 
     def dead_nodes(self) -> set[str]:
-        return {n["NodeID"] for n in self._ray.nodes() if not n.get("Alive", False)}
+        now = time.monotonic()
+        if now - self._dead_checked >= 0.5:  # one control-store call serves every lane
+            self._dead = {n["NodeID"] for n in self._ray.nodes() if not n.get("Alive", False)}
+            self._dead_checked = now
+        return self._dead
 
-    def avoid(self, nodes: set[str]) -> None:
-        if frozenset(nodes) != self._avoid:
-            self._avoid = frozenset(nodes)
+    def _set_avoid(self, search: str, nodes: set[str]) -> None:
+        if nodes:
+            self._avoid_by_lane[search] = frozenset(nodes)
+        else:
+            self._avoid_by_lane.pop(search, None)
+        union = frozenset().union(*self._avoid_by_lane.values()) if self._avoid_by_lane else frozenset()
+        if union != self._avoid:
+            self._avoid = union
             self._variants.clear()
 
     def close(self) -> None:
         for ref in list(self._refs):
             self._ray.cancel(ref, force=True)
         self._refs.clear()
-        self._by_trial.clear()
+        self._by_key.clear()
+
+
+class RayLane:
+    """One search's :class:`Executor` on a shared :class:`RayPool`. ``wait`` returns what the
+    pool has routed here; it waits on the pool itself only when the pool is its own."""
+
+    def __init__(self, pool: RayPool, search: str, owns_pool: bool = False) -> None:
+        self.pool = pool
+        self.search = search
+        self.owns_pool = owns_pool
+        self.inbox: deque[Completion] = deque()
+        self.milestones: list[tuple[int, int, int, float]] = []
+        self.beats: dict[tuple[int, int], tuple[Any, str]] = {}
+        self._running: set[tuple[int, int]] = set()
+
+    def capacity(self) -> float:
+        return self.pool.capacity()
+
+    def submit(self, order: SegmentOrder, cpus: float, memory_mb: int) -> None:
+        self.pool.submit(self.search, order, cpus, memory_mb)
+        self._running.add((order.trial, order.attempt))
+
+    def wait(self, timeout: float) -> list[Completion]:
+        if self.owns_pool and not self.inbox:
+            self.pool.poll(timeout)
+        done = list(self.inbox)
+        self.inbox.clear()
+        for c in done:
+            self._running.discard((c.trial, c.attempt))
+        return done
+
+    def cancel(self, trial: int, attempt: int) -> None:
+        self.pool.cancel(self.search, trial, attempt)
+
+    def in_flight(self) -> int:
+        return len(self._running)
+
+    def drain_link(self) -> dict[str, Any]:
+        self.pool.drain_link()
+        milestones, self.milestones = self.milestones, []
+        beats, self.beats = self.beats, {}
+        return {"milestones": milestones, "beats": beats}
+
+    def decide(self, verdicts: list[tuple[int, int, int, bool]]) -> None:
+        self.pool.decide(self.search, verdicts)
+
+    def ask_to_yield(self, trial: int, attempt: int) -> None:
+        self.pool.ask_to_yield(self.search, trial, attempt)
+
+    def dead_nodes(self) -> set[str]:
+        return self.pool.dead_nodes()
+
+    def avoid(self, nodes: set[str]) -> None:
+        self.pool._set_avoid(self.search, nodes)
+
+    def close(self) -> None:
+        for trial, attempt in list(self._running):
+            self.pool.cancel(self.search, trial, attempt)
+        self._running.clear()
+        if self.owns_pool:
+            self.pool.close()
+
+
+class RayExecutor(RayLane):
+    """Segments as Ray tasks on the cluster ``ray.init`` connected to, for a head with one
+    search: a lane with a pool of its own (it learns the search's name from its orders)."""
+
+    def __init__(self, relay: Any | None = None, spread: bool = False) -> None:
+        super().__init__(RayPool(relay, spread), "", owns_pool=True)
+
+    def submit(self, order: SegmentOrder, cpus: float, memory_mb: int) -> None:
+        if not self.search:
+            self.search = order.search
+            self.pool.lanes[self.search] = self
+        super().submit(order, cpus, memory_mb)

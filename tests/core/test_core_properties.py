@@ -176,6 +176,19 @@ class CoreMachine(RuleBasedStateMachine):
         assert sum(1 for t in self.core.trials() if t.state == ACTIVE) == len(self.running)
 
 
+    @invariant()
+    def backlog_is_zero_exactly_when_ask_gives_nothing(self) -> None:
+        """A fair-sharing head grants segments by ``backlog`` without asking: a search whose
+        backlog is 0 must have nothing to hand out, or it would wait for ever."""
+        if not hasattr(self, "core"):
+            return
+        probe = SearchCore.restore(json.loads(json.dumps(self.core.snapshot())), CountingSampler())
+        backlog = self.core.backlog(10_000)
+        assert 0 <= backlog <= 10_000
+        out = probe.ask()
+        assert (backlog == 0) == (not isinstance(out, Segment)), (backlog, out)
+
+
 CoreMachine.TestCase.settings = settings(
     max_examples=150, stateful_step_count=60, deadline=None, suppress_health_check=[HealthCheck.too_slow]
 )

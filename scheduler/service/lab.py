@@ -1,0 +1,568 @@
+"""The lab's head: every team's searches in one loop, sharing one Ray cluster by the lab's rules.
+
+Theory of operation. Each search has its own :class:`SearchDriver` (its core, journal and
+store folder, exactly as when run alone) driving a lane of one shared :class:`RayPool`. The
+pure :class:`SharingState` decides who may start how many segments: every loop the head tells
+it each search's demand (``SearchDriver.backlog``: what the search could start now, without
+asking its core, so nothing is committed early), plans a round, and hands each search its
+grant. Segments that start and end are reported back (``Started``/``Ended``) through the
+driver's listener, which also writes one CPU-ledger row per segment. Preemptions are carried
+out through the relay (``ask_to_yield``); a segment still running at its deadline is stopped
+and requeued from its checkpoint.
+
+The API thread calls the public methods; they take the head's lock, so every change happens
+between two loop turns. Submissions, pauses, resumes and cancels are journaled in the lab's
+own journal (``<store>/lab/journal``) before they are acknowledged; a restarted head replays
+it, each search's driver restores itself from its own journal, and usage for the current
+allowance period is read back from the ledger. Searches keep their submission order and
+priority, which is their queue position.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import threading
+import time
+import traceback
+from collections.abc import Callable
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+from rungway.scheduler.core.errors import SpecError
+from rungway.scheduler.core.sharing import (
+    Demand,
+    Ended,
+    QuotaChanged,
+    SharingState,
+    Started,
+    TeamsConfigured,
+    Tick,
+    Withdrawn,
+)
+from rungway.scheduler.head.driver import HealthSettings, SearchDriver
+from rungway.scheduler.head.executor import Executor
+from rungway.scheduler.head.journal import Journal
+from rungway.scheduler.spec import SearchSpec, parse_spec
+from rungway.scheduler.store import StorageError, Store
+from rungway.scheduler.store.layout import validate_search_name
+from rungway.workers.runner import SegmentSummary
+
+from .config import LabConfig, period_start
+from .errors import HeadStopped, NameTaken, UnknownSearch, WrongState
+from .ledger import Ledger, LedgerRow
+from .models import SearchDetail, SearchInfo, SearchUsage, TeamUsage, UsageReport
+
+__all__ = ["LabHead", "PoolLike"]
+
+log = logging.getLogger("rungway.lab")
+
+_ACTIVE = ("running", "paused", "held")
+_DEMAND_LIMIT = 100_000  # a search's demand is counted up to this many segments
+
+
+class PoolLike:
+    """What the head needs of its executor pool (``RayPool``, or a fake in tests)."""
+
+    def lane(self, search: str) -> Executor: ...  # pragma: no cover - protocol
+    def forget(self, search: str) -> None: ...  # pragma: no cover
+    def poll(self, timeout: float) -> int: ...  # pragma: no cover
+    def capacity(self) -> float: ...  # pragma: no cover
+    def memory_mb(self) -> int: ...  # pragma: no cover
+    def close(self) -> None: ...  # pragma: no cover
+
+
+@dataclass
+class _Search:
+    name: str
+    team: str
+    priority: int
+    submitted_at: float
+    spec: SearchSpec
+    spec_text: str
+    state: str = "running"
+    reason: str | None = None
+    driver: SearchDriver | None = None
+    last_stats: dict[str, Any] = field(default_factory=dict)
+    demand: tuple[int, float, int, int] | None = None  # last Demand sent: waiting, cpus, memory, priority
+    yielding: dict[tuple[int, int], float] = field(default_factory=dict)  # segment -> deadline (pause)
+    preempted: set[tuple[int, int]] = field(default_factory=set)
+    wall_started: dict[tuple[int, int], float] = field(default_factory=dict)
+
+
+class LabHead:
+    """Holds the lab's searches and runs them all; thread-safe public methods for the API."""
+
+    def __init__(
+        self,
+        config: LabConfig,
+        pool: PoolLike | None = None,
+        *,
+        clock: Callable[[], float] = time.monotonic,
+        wall: Callable[[], float] = time.time,
+        health: HealthSettings = HealthSettings(),
+    ) -> None:
+        self.config = config
+        self.store_root = config.store_root
+        self.store = Store(self.store_root)
+        self.ledger = Ledger(self.store_root)
+        self.clock = clock
+        self.wall = wall
+        self.health = health
+        self._pool = pool
+        self._lock = threading.RLock()
+        self._thread: threading.Thread | None = None
+        self._stopping = threading.Event()
+        self._searches: dict[str, _Search] = {}
+        self._ledger_rows: list[LedgerRow] = []
+        self._capacity: tuple[float, int] | None = None
+        self._capacity_checked = -math.inf
+        self._period_began = period_start(config.head.allowance_period, wall())
+        self.loop_error: str | None = None
+        self.rounds = 0
+        self.sharing = SharingState()
+        self._journal = Journal(self._lab_dir() / "journal")
+        self._replay()
+
+    # ---- state on disk --------------------------------------------------------------------
+
+    def _lab_dir(self) -> Path:
+        if "://" in self.store_root and not self.store_root.startswith("file://"):
+            raise SpecError("the lab's head keeps its journal on a POSIX path (local disk or NFS); "
+                            f"mount the store and give its path, not {self.store_root}", field="head.store")
+        return Path(self.store_root.removeprefix("file://")) / "lab"
+
+    def _replay(self) -> None:
+        for entry in self._journal.entries_after(0):
+            kind, name = entry["e"], entry["name"]
+            if kind == "submit":
+                text = self.store.search(name).read_spec()
+                if text is None:
+                    log.warning("search %s was submitted but its spec is not in the store; skipped", name)
+                    continue
+                self._searches[name] = _Search(name, entry["team"], int(entry["priority"]), float(entry["at"]),
+                                               parse_spec(text, source=name), text)
+            elif name in self._searches:
+                s = self._searches[name]
+                s.state, s.reason = entry["state"], entry.get("reason")
+        if self._searches:
+            log.info("restored %d searches from the lab journal", len(self._searches))
+
+    def _record(self, entry: dict[str, Any]) -> None:
+        self._journal.append([entry])
+
+    # ---- the public API (thread-safe) ------------------------------------------------------
+
+    def submit(self, team: str, spec_text: str, priority: int = 0) -> SearchInfo:
+        quota = self.config.team(team)  # raises for an unknown team
+        spec = parse_spec(spec_text, source="spec")
+        validate_search_name(spec.name)
+        cap = quota.cap_cpus
+        if cap is not None and spec.resources.cpus > cap:
+            raise SpecError(f"one trial asks for {spec.resources.cpus} CPUs but team {team!r} may use at most "
+                            f"{cap}; ask for fewer", field="resources.cpus")
+        with self._lock:
+            if self._stopping.is_set():
+                raise HeadStopped("the head is shutting down; submit again once it is back")
+            if spec.name in self._searches:
+                raise NameTaken(f"a search named {spec.name!r} already exists; give yours another name")
+            files = self.store.search(spec.name)
+            if files.read_spec() is not None:
+                raise NameTaken(f"the store already holds a search named {spec.name!r}; give yours another name")
+            files.write_spec(spec_text)
+            s = _Search(spec.name, team, priority, self.wall(), spec, spec_text)
+            self._record({"e": "submit", "name": s.name, "team": team, "priority": priority, "at": s.submitted_at})
+            self._searches[s.name] = s
+            log.info("team %s submitted search %s (priority %d)", team, s.name, priority)
+            return self._info(s)
+
+    def searches(self, team: str | None = None) -> list[SearchInfo]:
+        with self._lock:
+            return [self._info(s) for s in self._ordered() if team is None or s.team == team]
+
+    def search(self, name: str) -> SearchDetail:
+        with self._lock:
+            s = self._get(name)
+            info = self._info(s).model_dump()
+            stats = self._stats(s)
+            leaderboard = []
+            if s.driver is not None:
+                core = s.driver.core
+                for t in core.leaderboard(10):
+                    leaderboard.append({"trial": t.id, "rung": t.rung, "budget": float(t.budget), "state": t.state,
+                                        "value": None if t.loss is None else _finite(core.value_of(t.loss)),
+                                        "config": t.config})
+            rungs = [dict(r, bracket=b) for b, br in enumerate(stats.get("brackets", [])) for r in br["rungs"]]
+            return SearchDetail(**info, leaderboard=leaderboard, rungs=_jsonable(rungs),
+                                statistics=_jsonable({k: v for k, v in stats.items() if k != "brackets"}))
+
+    def owner(self, name: str) -> str:
+        with self._lock:
+            return self._get(name).team
+
+    def pause(self, name: str) -> SearchInfo:
+        with self._lock:
+            s = self._get(name)
+            if s.state not in ("running", "held"):
+                raise WrongState(f"search {name!r} is {s.state}; only a running or held search can be paused")
+            self._set_state(s, "paused", "paused by request")
+            deadline = self.clock() + self.config.head.preempt_deadline
+            if s.driver is not None:
+                for key in s.driver.running_segments():
+                    s.driver.executor.ask_to_yield(*key)
+                    s.yielding[key] = deadline
+            return self._info(s)
+
+    def resume(self, name: str) -> SearchInfo:
+        with self._lock:
+            s = self._get(name)
+            if s.state not in ("paused", "faulted"):
+                raise WrongState(f"search {name!r} is {s.state}; only a paused or faulted search can be resumed")
+            self._set_state(s, "running", None)
+            return self._info(s)
+
+    def cancel(self, name: str) -> SearchInfo:
+        with self._lock:
+            s = self._get(name)
+            if s.state in ("finished", "cancelled"):
+                raise WrongState(f"search {name!r} is already {s.state}")
+            self._close_driver(s)
+            self._set_state(s, "cancelled", "cancelled by request")
+            return self._info(s)
+
+    def usage(self, team: str | None = None, period: str = "month", since: float | None = None,
+              until: float | None = None) -> UsageReport:
+        now = self.wall()
+        if since is None and period != "all":
+            since = period_start(period, now)
+        until = now if until is None else until
+        with self._lock:
+            self._write_ledger()
+            teams_used, per_search = self.ledger.usage(since, until)
+            stats = self.sharing.statistics().get("teams", {}) if self._capacity is not None else {}
+            teams = []
+            for q in self.config.teams:
+                if team is not None and q.name != team:
+                    continue
+                used = teams_used.get(q.name, {})
+                mine = [s for s in self._searches.values() if s.team == q.name]
+                teams.append(TeamUsage(
+                    team=q.name, guarantee_cpus=q.guarantee_cpus, cap_cpus=q.cap_cpus, weight=q.weight,
+                    allowance_cpu_hours=q.allowance_cpu_hours, used_cpu_hours=used.get("cpu_hours", 0.0),
+                    memory_mb_hours=used.get("memory_mb_hours", 0.0),
+                    cpus_running=float(stats.get(q.name, {}).get("running_cpus", 0.0)),
+                    searches=sum(1 for s in mine if s.state in _ACTIVE),
+                    held=any(s.state == "held" for s in mine),
+                ))
+            searches = [SearchUsage(team=r["team"], search=r["search"], cpu_hours=r["cpu_hours"], segments=r["segments"])
+                        for r in per_search if team is None or r["team"] == team]
+            return UsageReport(period=period, since=since, until=until, teams=teams, searches=searches)
+
+    # ---- lifecycle -------------------------------------------------------------------------
+
+    def start(self) -> None:
+        """Start the loop thread (connects to Ray through the pool given, or a new RayPool)."""
+        if self._pool is None:
+            from rungway.scheduler.head.executor import RayPool
+
+            self._pool = RayPool()
+        self._configure(force=True)
+        self._thread = threading.Thread(target=self._loop_guarded, name="rungway-lab", daemon=True)
+        self._thread.start()
+
+    def stop(self, timeout: float = 30.0) -> None:
+        """Stop the loop: running segments are requeued from their checkpoints, state written."""
+        self._stopping.set()
+        if self._thread is not None:
+            self._thread.join(timeout)
+        with self._lock:
+            for s in self._searches.values():
+                if s.driver is not None:
+                    self._close_driver(s)
+            self._write_ledger()
+            self._journal.close()
+
+    def run_for(self, seconds: float, until: Callable[[], bool] | None = None) -> None:
+        """Run the loop in this thread (tests and tools): for ``seconds`` or until ``until()``."""
+        if self._pool is None:
+            raise RuntimeError("run_for needs a pool given to the constructor")
+        self._configure(force=True)
+        end = self.clock() + seconds
+        while self.clock() < end and not (until is not None and until()):
+            self.turn()
+
+    def _loop_guarded(self) -> None:
+        while not self._stopping.is_set():
+            try:
+                self.turn()
+            except Exception:  # the head keeps serving; the error is shown and logged
+                self.loop_error = traceback.format_exc()
+                log.exception("the lab's loop failed; retrying in 1 s")
+                time.sleep(1.0)
+
+    # ---- one turn of the loop --------------------------------------------------------------
+
+    def turn(self) -> None:
+        pool = self._pool
+        assert pool is not None
+        busy = any(s.driver is not None and s.driver.running for s in self._searches.values())
+        pool.poll(self.config.head.round_seconds if busy else 0.0)
+        if not busy:
+            time.sleep(min(self.config.head.round_seconds, 0.05))
+        with self._lock:
+            now = self.clock()
+            self._configure()
+            if self._capacity is None:
+                return
+            self._roll_period()
+            self._open_drivers()
+            decision = self.sharing.apply(Tick(now))
+            assert decision is not None
+            self.rounds += 1
+            grants = {g.search: g.count for g in decision.grants}
+            for p in decision.preemptions:
+                s, key = self._segment(p.segment)
+                if s is not None and s.driver is not None:
+                    s.driver.executor.ask_to_yield(*key)
+                    s.preempted.add(key)
+                    log.info("preempting %s/%s/%s for %s (%s), deadline in %.0fs", s.name, key[0], key[1],
+                             p.beneficiary or p.team, p.reason, p.deadline - now)
+            for f in decision.force_stop:
+                s, key = self._segment(f.segment)
+                if s is not None and s.driver is not None:
+                    s.driver.stop_segment(*key, why="preempted: did not yield by its deadline")
+            held = {(p.team, p.search): p.reason for p in decision.paused}
+            for s in list(self._searches.values()):
+                if s.state == "running" and (s.team, s.name) in held:
+                    self._set_state(s, "held", held[(s.team, s.name)])
+                elif s.state == "held" and (s.team, s.name) not in held and s.reason == "allowance spent":
+                    self._set_state(s, "running", None)
+                self._step(s, grants.get(s.name, 0), now)
+            self._write_ledger()
+
+    def _step(self, s: _Search, grant: int, now: float) -> None:
+        d = s.driver
+        if d is None:
+            return
+        for key, deadline in list(s.yielding.items()):
+            if key not in d.running:
+                del s.yielding[key]
+            elif now >= deadline:
+                d.stop_segment(*key, why="search paused: did not yield by its deadline")
+                del s.yielding[key]
+        if s.state != "running":
+            grant = 0
+        d.step(wait=0.0, grant=grant)
+        if d.over:
+            report = d.end()
+            s.last_stats = report.statistics
+            s.driver = None
+            self._withdraw(s)
+            self._pool.forget(s.name)  # type: ignore[union-attr]
+            if report.paused_reason:
+                self._set_state(s, "faulted", report.paused_reason)
+                log.warning("search %s stopped: %s", s.name, report.paused_reason)
+            else:
+                self._set_state(s, "finished", None)
+                log.info("search %s finished (%d segments)", s.name, report.segments)
+            return
+        s.last_stats = {}
+        waiting = d.backlog(_DEMAND_LIMIT) if s.state in ("running", "held") else 0
+        demand = (waiting, float(s.spec.resources.cpus), int(s.spec.resources.memory_mb), s.priority)
+        if demand != s.demand:
+            self.sharing.apply(Demand(s.team, s.name, *demand))
+            s.demand = demand
+
+    def _open_drivers(self) -> None:
+        """Searches that should run but have no driver yet (new, resumed or restored)."""
+        for s in self._ordered():
+            if s.driver is None and s.state in _ACTIVE:
+                try:
+                    s.driver = SearchDriver(s.spec, s.spec_text, self.store_root, self._pool.lane(s.name),  # type: ignore[union-attr]
+                                            health=self.health, listener=self, persist_seconds=5.0)
+                    s.driver.begin()
+                except (StorageError, SpecError) as exc:
+                    s.driver = None
+                    self._set_state(s, "faulted", str(exc))
+                    log.warning("search %s cannot start: %s", s.name, exc)
+
+    def _close_driver(self, s: _Search) -> None:
+        if s.driver is None:
+            return
+        d, s.driver = s.driver, None
+        try:
+            report = d.end()
+            s.last_stats = report.statistics
+        except StorageError as exc:
+            log.warning("search %s: %s", s.name, exc)
+        self._withdraw(s)
+        if self._pool is not None:
+            self._pool.forget(s.name)
+
+    def _withdraw(self, s: _Search) -> None:
+        if s.demand is not None:
+            try:
+                self.sharing.apply(Withdrawn(s.team, s.name))
+            except Exception:  # never declared: nothing to forget
+                pass
+            s.demand = None
+
+    # ---- the listener of every driver -------------------------------------------------------
+
+    def started(self, search: str, trial: int, attempt: int, rung: int) -> None:
+        s = self._searches[search]
+        if s.demand is None:  # started before its first Demand (a drain check that found work)
+            demand = (1, float(s.spec.resources.cpus), int(s.spec.resources.memory_mb), s.priority)
+            self.sharing.apply(Demand(s.team, s.name, *demand))
+            s.demand = demand
+        s.wall_started[(trial, attempt)] = self.wall()
+        self.sharing.apply(Started(_segment_id(search, trial, attempt), s.team, search, float(s.spec.resources.cpus),
+                                   int(s.spec.resources.memory_mb), max(self.clock(), self.sharing.now)))
+        if s.demand is not None and s.demand[0] > 0:  # the sharing state counted the start down
+            s.demand = (s.demand[0] - 1, *s.demand[1:])
+
+    def ended(self, search: str, trial: int, attempt: int, rung: int, outcome: str, cpu_seconds: float,
+              summary: SegmentSummary | None, node: str) -> None:
+        s = self._searches[search]
+        sid = _segment_id(search, trial, attempt)
+        try:
+            self.sharing.apply(Ended(sid, at=max(self.clock(), self.sharing.now)))
+        except Exception:  # not known to the sharing state (started before a restart)
+            pass
+        began = s.wall_started.pop((trial, attempt), None)
+        cpus = float(s.spec.resources.cpus)
+        if summary is not None and summary.ended >= summary.started > 0:
+            start, end = summary.started, summary.ended
+        else:
+            end = self.wall()
+            start = end - cpu_seconds / cpus if cpus else end
+        if began is not None and summary is None:
+            start = min(max(start, began), end)
+        ran = max(0.0, end - start)
+        memory = int(s.spec.resources.memory_mb)
+        self._ledger_rows.append(LedgerRow(
+            team=s.team, search=search, trial=trial, attempt=attempt, rung=rung, node=node or "",
+            started=start, ended=end, cpus=cpus, cpu_seconds=cpus * ran, memory_mb=memory,
+            memory_mb_seconds=memory * ran, outcome=outcome, preempted=(trial, attempt) in s.preempted,
+        ))
+        s.preempted.discard((trial, attempt))
+
+    # ---- helpers ---------------------------------------------------------------------------
+
+    def _write_ledger(self) -> None:
+        if self._ledger_rows:
+            rows, self._ledger_rows = self._ledger_rows, []
+            try:
+                self.ledger.append(rows)
+            except StorageError:
+                self._ledger_rows = rows + self._ledger_rows  # kept for the next try
+                raise
+
+    def _configure(self, force: bool = False) -> None:
+        """Tell the sharing state the cluster's size and the teams (again when the size changes)."""
+        now = self.clock()
+        if not force and now - self._capacity_checked < 2.0:
+            return
+        self._capacity_checked = now
+        pool = self._pool
+        assert pool is not None
+        capacity = (float(pool.capacity()), int(pool.memory_mb()))
+        if capacity[0] <= 0 or capacity[1] <= 0:
+            log.warning("the cluster reports no CPUs or no memory yet; waiting")
+            return
+        if capacity == self._capacity and not force:
+            return
+        first = self._capacity is None
+        self._capacity = capacity
+        quotas = self.config.quotas()
+        if first:
+            used = self.ledger.cpu_seconds_by_team(since=self._period_began)
+            quotas = tuple(_with_used(q, used.get(q.name, 0.0) / 3600) for q in quotas)
+        promised = sum(q.guarantee_cpus for q in quotas)
+        if promised > capacity[0] > 0:
+            # A node is gone (or the cluster is smaller than the lab planned): guarantees shrink
+            # in proportion until it is back, so that they still add up to what there is.
+            scale = capacity[0] / promised
+            quotas = tuple(replace(q, guarantee_cpus=math.floor(q.guarantee_cpus * scale * 1000) / 1000) for q in quotas)
+            log.warning("the teams' guarantees add up to %.3g CPUs but the cluster has %.3g; scaled by %.3f",
+                        promised, capacity[0], scale)
+        self.sharing.apply(TeamsConfigured(capacity[0], capacity[1], quotas, self.config.head.preempt_deadline))
+        log.info("cluster: %.0f CPUs, %d MB; %d teams", capacity[0], capacity[1], len(quotas))
+
+    def _roll_period(self) -> None:
+        began = period_start(self.config.head.allowance_period, self.wall())
+        if began != self._period_began:
+            self._period_began = began
+            for q in self.config.teams:
+                self.sharing.apply(QuotaChanged(q.name, used_cpu_hours=0.0))
+            log.info("a new allowance period began; usage counts from 0")
+
+    def _set_state(self, s: _Search, state: str, reason: str | None) -> None:
+        if (s.state, s.reason) == (state, reason):
+            return
+        s.state, s.reason = state, reason
+        self._record({"e": "state", "name": s.name, "state": state, "reason": reason})
+        if state not in ("running", "held"):  # a held search keeps its demand: it is held for it
+            if s.demand is not None and s.demand[0] != 0:
+                self.sharing.apply(Demand(s.team, s.name, 0, *s.demand[1:]))
+                s.demand = (0, *s.demand[1:])
+
+    def _segment(self, sid: str | int) -> tuple[_Search | None, tuple[int, int]]:
+        search, trial, attempt = str(sid).rsplit("/", 2)
+        return self._searches.get(search), (int(trial), int(attempt))
+
+    def _get(self, name: str) -> _Search:
+        s = self._searches.get(name)
+        if s is None:
+            raise UnknownSearch(f"no search named {name!r}")
+        return s
+
+    def _ordered(self) -> list[_Search]:
+        return sorted(self._searches.values(), key=lambda s: (s.submitted_at, s.name))
+
+    def _stats(self, s: _Search) -> dict[str, Any]:
+        if s.driver is not None:
+            return s.driver.statistics()
+        if s.last_stats:
+            return s.last_stats
+        return {}
+
+    def _info(self, s: _Search) -> SearchInfo:
+        stats = self._stats(s)
+        best = stats.get("best") or {}
+        running = len(s.driver.running) if s.driver is not None else 0
+        return SearchInfo(
+            name=s.name, team=s.team, priority=s.priority, state=s.state, reason=s.reason,  # type: ignore[arg-type]
+            submitted_at=s.submitted_at, metric=s.spec.metric, direction=s.spec.direction,
+            trials=int(stats.get("trials", 0)), segments=int(stats.get("segments", 0)),
+            running_segments=running, cpus_busy=running * float(s.spec.resources.cpus),
+            cpu_seconds=float(stats.get("cpu_seconds", 0.0)),
+            best_value=_finite(best.get("value")), best_trial=best.get("trial"),
+        )
+
+
+def _segment_id(search: str, trial: int, attempt: int) -> str:
+    return f"{search}/{trial}/{attempt}"
+
+
+def _with_used(q: Any, used_hours: float) -> Any:
+    return replace(q, used_cpu_hours=used_hours)
+
+
+def _finite(value: Any) -> float | None:
+    if value is None:
+        return None
+    value = float(value)
+    return value if math.isfinite(value) else None
+
+
+def _jsonable(value: Any) -> Any:
+    """Statistics as JSON (non-finite floats become None)."""
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
