@@ -70,6 +70,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     plan_cmd.add_parser(sub)
 
+    from rungway.scheduler.cli import lab_cmd
+
+    lab_cmd.add_parsers(sub)
+
     export = sub.add_parser("export", help="write a search's trials or measurements to a file")
     export.add_argument("name")
     export.add_argument("--what", choices=["trials", "measurements", "failures"], default="trials")
@@ -319,7 +323,20 @@ def cmd_plan(args: argparse.Namespace) -> int:
     return plan_cmd.run(args)
 
 
-COMMANDS = {"run": cmd_run, "demo": cmd_demo, "show": cmd_show, "list": cmd_list, "export": cmd_export, "plan": cmd_plan}
+def cmd_head(args: argparse.Namespace) -> int:
+    from rungway.scheduler.cli import lab_cmd
+
+    return lab_cmd.run_head(args)
+
+
+def cmd_lab(args: argparse.Namespace) -> int:
+    from rungway.scheduler.cli import lab_cmd
+
+    return lab_cmd.run_lab(args)
+
+
+COMMANDS = {"run": cmd_run, "demo": cmd_demo, "show": cmd_show, "list": cmd_list, "export": cmd_export, "plan": cmd_plan,
+            "head": cmd_head, "lab": cmd_lab}
 
 if __name__ == "__main__":
     sys.exit(main())

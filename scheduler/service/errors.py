@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from rungway.scheduler.core.errors import RungwayError
 
-__all__ = ["ServiceError", "UnknownSearch", "NameTaken", "WrongState", "HeadStopped"]
+__all__ = ["ServiceError", "UnknownSearch", "UnknownTeam", "NameTaken", "WrongState", "HeadStopped"]
 
 
 class ServiceError(RungwayError):
@@ -14,7 +14,13 @@ class ServiceError(RungwayError):
 
 
 class UnknownSearch(ServiceError):
-    """No search of that name (or none the caller may see: a team never learns of another's)."""
+    """No search of that name in the lab."""
+
+    status = 404
+
+
+class UnknownTeam(ServiceError):
+    """The lab config names no such team."""
 
     status = 404
 

@@ -50,7 +50,7 @@ from rungway.scheduler.store.layout import validate_search_name
 from rungway.workers.runner import SegmentSummary
 
 from .config import LabConfig, period_start
-from .errors import HeadStopped, NameTaken, UnknownSearch, WrongState
+from .errors import HeadStopped, NameTaken, UnknownSearch, UnknownTeam, WrongState
 from .ledger import Ledger, LedgerRow
 from .models import SearchDetail, SearchInfo, SearchUsage, TeamUsage, UsageReport
 
@@ -155,7 +155,10 @@ class LabHead:
     # ---- the public API (thread-safe) ------------------------------------------------------
 
     def submit(self, team: str, spec_text: str, priority: int = 0) -> SearchInfo:
-        quota = self.config.team(team)  # raises for an unknown team
+        try:
+            quota = self.config.team(team)
+        except KeyError:
+            raise UnknownTeam(f"the lab config has no team {team!r}") from None
         spec = parse_spec(spec_text, source="spec")
         validate_search_name(spec.name)
         cap = quota.cap_cpus

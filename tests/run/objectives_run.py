@@ -70,7 +70,7 @@ def padded(ctx):
     return {"loss": (x - 0.3) ** 2 + state["value"] / (ctx.budget + 1)}
 
 
-def slow_resumable(ctx):
+def slow_resumable(ctx, honour_yield: bool = False):
     """Resumable, ``RUNGWAY_TEST_SLEEP`` seconds per budget unit, a checkpoint every unit."""
     delay = float(os.environ.get("RUNGWAY_TEST_SLEEP", "0.2"))
     x = ctx.config["x"]
@@ -80,4 +80,11 @@ def slow_resumable(ctx):
         state = {"value": math.sin(state["value"] * 1.7 + step) + 0.01 * step, "step": step + 1}
         ctx.save(state, step + 1)
         ctx.report(step + 1, loss=(x - 0.3) ** 2 + state["value"] / (step + 2))
+        if honour_yield and ctx.should_yield:
+            return None
     return {"loss": (x - 0.3) ** 2 + state["value"] / (ctx.budget + 1)}
+
+
+def yielding_slow(ctx):
+    """``slow_resumable`` that honours a request to yield after each saved unit (preemption)."""
+    return slow_resumable(ctx, honour_yield=True)
