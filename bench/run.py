@@ -79,6 +79,10 @@ def plan(size: str, figures: str) -> list[Bench]:
         Bench("journal_replay", "journal_replay.py",
               pick(["--events", "100000", "--repeats", "5"], ["--events", "20000", "--repeats", "3"], ["--events", "2000", "--repeats", "1"]),
               json_flag=False, what="journal replay at head start"),
+        Bench("sharing_round", "sharing_round.py", pick(["--rounds", "1000"], ["--rounds", "200"], ["--rounds", "20"]),
+              what="one round of the sharing rules, 50 teams and 500 searches"),
+        Bench("lab_round", "lab_round.py", pick([], ["--turns", "150"], ["--quick", "--turns", "20"]),
+              what="one turn of the lab's head, 50 teams and 500 searches"),
         Bench("sim_scale", "sim_scale.py", pick([], ["--quick"]), what="simulator speed and scaling"),
         Bench("sim_accuracy", "sim_accuracy.py", pick([], ["--quick"], ["--smoke"]), ray=True,
               what="simulator predictions against real runs"),
@@ -539,7 +543,48 @@ def render_sim_accuracy(res: dict[str, Any], rep: Report) -> None:
                     "fitted s/unit + s/segment"], rows) + "\n")
 
 
-RENDER = {"core_cost": render_core_cost, "dispatch": render_dispatch, "utilization": render_utilization,
+def render_sharing_round(res: dict[str, Any], rep: Report) -> None:
+    runs, cmd = res["runs"], res["command"]
+    if not runs:
+        return
+    for case, label in (("steady", "steady state"), ("cold", "first round, empty cluster"), ("preempting", "round that preempts")):
+        s = sp([r[case]["median_ms"] for r in runs])
+        rep.row("sharing_round", f"sharing round, {runs[0]['teams']} teams / {runs[0]['searches']} searches / "
+                f"{runs[0]['waiting']:,} waiting, {label} (ms, median)", show(s, ".3g"), "well under 10 ms",
+                s["max"] is not None and s["max"] < 10.0, cmd)
+    rep.sections.append(
+        f"## Sharing round (`sharing_round.py`)\n\nThe pure sharing rules alone "
+        f"(`scheduler/core/sharing.py`): {runs[0]['teams']} teams, {runs[0]['searches']} searches, "
+        f"{runs[0]['waiting']:,} segments waiting.\n\n"
+        + md_table(["case", "median ms", "p99 ms"], [
+            [case, show(sp([r[case]["median_ms"] for r in runs]), ".3g"), show(sp([r[case]["p99_ms"] for r in runs]), ".3g")]
+            for case in ("steady", "cold", "preempting")]) + "\n")
+
+
+def render_lab_round(res: dict[str, Any], rep: Report) -> None:
+    runs, cmd = res["runs"], res["command"]
+    if not runs:
+        return
+    turn = sp([r["turn_ms"]["median"] for r in runs])
+    p99 = sp([r["turn_ms"]["p99"] for r in runs])
+    inner = sp([r["sharing_round_ms"]["median"] for r in runs])
+    r0 = runs[0]
+    rep.row("lab_round", f"whole turn of the lab's head, {r0['teams']} teams / {r0['searches']} searches, "
+            f"{r0['segments_ended_per_turn']:.0f} segments ending per turn (ms, median)", show(turn, ".3g"),
+            "none set (the round: well under 10 ms)", None, cmd)
+    rep.sections.append(
+        f"## Lab head turn (`lab_round.py`)\n\nThe whole turn of `LabHead` (sharing round, every search's "
+        f"driver stepped, journals fsynced, one ledger file), {r0['teams']} teams, {r0['searches']} searches, "
+        f"{r0['running_segments']:,} segments running on a stand-in 2,048-CPU pool, "
+        f"{r0['segments_ended_per_turn']:.0f} ending per turn.\n\n"
+        + md_table(["figure", "median (min – max, n)"], [
+            ["turn, median ms", show(turn, ".3g")], ["turn, p99 ms", show(p99, ".3g")],
+            ["sharing round within it, median ms", show(inner, ".3g")],
+            ["first turn (every CPU free, drivers opened), ms", show(sp([r["first_turn_ms"] for r in runs]), ".3g")]])
+        + "\n")
+
+
+RENDER = {"sharing_round": render_sharing_round, "lab_round": render_lab_round, "core_cost": render_core_cost, "dispatch": render_dispatch, "utilization": render_utilization,
           "recovery": render_recovery, "journal_replay": render_journal, "sim_accuracy": render_sim_accuracy}
 
 

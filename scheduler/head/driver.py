@@ -153,6 +153,7 @@ class SearchDriver:
         self.planned = planned_budget(self.plan)
         self.time_left = TimeLeft(spec)
         self._uncommitted: list[dict[str, Any]] = []
+        self._persisted_seq = -1
         self._last_drain = 0.0
         self._last_fill = 0.0
         self._segments_this_run = 0
@@ -305,6 +306,7 @@ class SearchDriver:
         seq = self.journal.seq
         payload = json.dumps({"meta": meta, "journal_seq": seq, "core": self.core.snapshot()}, separators=(",", ":"))
         self.files.write_head_state(HEAD_STATE, payload)
+        self._persisted_seq = seq
         self.journal.rotate(seq)
         self.write_trials()
 
@@ -353,17 +355,20 @@ class SearchDriver:
         self._pending: list[Completion] = []  # finished segments whose results wait for the next write
         self._pending_since: float | None = None
 
+    def stagger(self, phase: float) -> None:
+        """Shift this driver's periodic work (snapshot, health check) by ``phase`` (0 to 1) of
+        its interval, so that a head with many searches does not do all of theirs at once."""
+        self._last_persist -= self.persist_seconds * phase
+        self._last_health -= self.health.check_every * phase
+
     def step(self, wait: float = 0.0, grant: int | None = None) -> None:
         """One turn of the loop: fill, collect finished segments, write, check health.
         Sets ``over`` when the search drained or paused on a storage fault."""
         report = self.report
         try:
             self._check_limits()
-            self._drained = self._fill(self.clock(), grant) or self._drained
-            if self._drained and not self.running and not self._pending:
-                report.finished = True
-                self.over = True
-                return
+            # Results first, then new segments: one journal write covers both (the segments'
+            # entries must be durable before they are submitted).
             self._pending.extend(self.executor.wait(timeout=wait if self.running else 0.0))
             now = self.clock()
             pending = self._pending
@@ -381,6 +386,11 @@ class SearchDriver:
                     report.paused_reason = reason
                     self.over = True
                     return
+            self._drained = self._fill(self.clock(), grant) or self._drained
+            if self._drained and not self.running and not self._pending:
+                report.finished = True
+                self.over = True
+                return
             self._relay_milestones()
             self._commit()
             if now - self._last_health >= self.health.check_every:
@@ -391,8 +401,8 @@ class SearchDriver:
             if self.progress is not None and now - self._last_progress >= self.progress_seconds:
                 self.progress(self.statistics())
                 self._last_progress = now
-            if now - self._last_persist >= self.persist_seconds:
-                self.persist()
+            if now - self._last_persist >= self.persist_seconds and self.journal.seq != self._persisted_seq:
+                self.persist()  # only when something happened: a shared head holds many idle searches
                 self.files.compact_measurements(min_parts=64)
                 self._last_persist = now
         except StorageError as exc:

@@ -94,6 +94,9 @@ class InlineExecutor:
     def in_flight(self) -> int:
         return len(self._done)
 
+    def news(self) -> bool:
+        return bool(self._done)
+
     def drain_link(self) -> dict[str, Any]:
         return {"milestones": [], "beats": {}}
 
@@ -386,6 +389,10 @@ class RayLane:
 
     def in_flight(self) -> int:
         return len(self._running)
+
+    def news(self) -> bool:
+        """Finished segments or relay posts wait for this search."""
+        return bool(self.inbox or self.milestones)
 
     def drain_link(self) -> dict[str, Any]:
         self.pool.drain_link()

@@ -60,6 +60,10 @@ log = logging.getLogger("rungway.lab")
 
 _ACTIVE = ("running", "paused", "held")
 _DEMAND_LIMIT = 100_000  # a search's demand is counted up to this many segments
+_IDLE_STEP = 0.25  # seconds between steps of a search that has nothing new
+# A search's snapshot only shortens its journal replay at restart; with hundreds of searches
+# one every few seconds each would be most of the head's disk writes.
+_PERSIST_SECONDS = 30.0
 
 
 class PoolLike:
@@ -89,6 +93,7 @@ class _Search:
     yielding: dict[tuple[int, int], float] = field(default_factory=dict)  # segment -> deadline (pause)
     preempted: set[tuple[int, int]] = field(default_factory=set)
     wall_started: dict[tuple[int, int], float] = field(default_factory=dict)
+    last_step: float = -math.inf
 
 
 class LabHead:
@@ -120,6 +125,7 @@ class LabHead:
         self._capacity_checked = -math.inf
         self._period_began = period_start(config.head.allowance_period, wall())
         self.loop_error: str | None = None
+        self._want_drivers = True  # a search may need a driver opened (set on every state change)
         self.rounds = 0
         self.sharing = SharingState()
         self._journal = Journal(self._lab_dir() / "journal")
@@ -177,6 +183,7 @@ class LabHead:
             s = _Search(spec.name, team, priority, self.wall(), spec, spec_text)
             self._record({"e": "submit", "name": s.name, "team": team, "priority": priority, "at": s.submitted_at})
             self._searches[s.name] = s
+            self._want_drivers = True
             log.info("team %s submitted search %s (priority %d)", team, s.name, priority)
             return self._info(s)
 
@@ -290,7 +297,8 @@ class LabHead:
         """Run the loop in this thread (tests and tools): for ``seconds`` or until ``until()``."""
         if self._pool is None:
             raise RuntimeError("run_for needs a pool given to the constructor")
-        self._configure(force=True)
+        if self._capacity is None:
+            self._configure(force=True)
         end = self.clock() + seconds
         while self.clock() < end and not (until is not None and until()):
             self.turn()
@@ -311,6 +319,9 @@ class LabHead:
         assert pool is not None
         busy = any(s.driver is not None and s.driver.running for s in self._searches.values())
         pool.poll(self.config.head.round_seconds if busy else 0.0)
+        drain = getattr(pool, "drain_link", None)
+        if drain is not None:
+            drain()  # relay posts (heartbeats, rung results) routed to the searches' lanes
         if not busy:
             time.sleep(min(self.config.head.round_seconds, 0.05))
         with self._lock:
@@ -319,7 +330,8 @@ class LabHead:
             if self._capacity is None:
                 return
             self._roll_period()
-            self._open_drivers()
+            if self._want_drivers:
+                self._open_drivers()
             decision = self.sharing.apply(Tick(now))
             assert decision is not None
             self.rounds += 1
@@ -341,7 +353,13 @@ class LabHead:
                     self._set_state(s, "held", held[(s.team, s.name)])
                 elif s.state == "held" and (s.team, s.name) not in held and s.reason == "allowance spent":
                     self._set_state(s, "running", None)
-                self._step(s, grants.get(s.name, 0), now)
+                grant = grants.get(s.name, 0)
+                # A search with no grant, nothing finished and nothing to watch waits for the
+                # next periodic step (health, heartbeats, limits): 500 idle searches cost little.
+                if (grant or s.yielding or s.driver is None or s.demand is None or now - s.last_step >= _IDLE_STEP
+                        or _news(s.driver)):
+                    self._step(s, grant, now)
+                    s.last_step = now
             self._write_ledger()
 
     def _step(self, s: _Search, grant: int, now: float) -> None:
@@ -379,12 +397,17 @@ class LabHead:
 
     def _open_drivers(self) -> None:
         """Searches that should run but have no driver yet (new, resumed or restored)."""
-        for s in self._ordered():
+        self._want_drivers = False
+        now = self.clock()
+        for i, s in enumerate(self._ordered()):
             if s.driver is None and s.state in _ACTIVE:
+                # Idle searches' periodic steps are spread over the interval, not all in one turn.
+                s.last_step = now - _IDLE_STEP * ((i * 0.6180339887) % 1.0)
                 try:
                     s.driver = SearchDriver(s.spec, s.spec_text, self.store_root, self._pool.lane(s.name),  # type: ignore[union-attr]
-                                            health=self.health, listener=self, persist_seconds=5.0)
+                                            health=self.health, listener=self, persist_seconds=_PERSIST_SECONDS)
                     s.driver.begin()
+                    s.driver.stagger(((i * 0.6180339887) % 1.0))
                 except (StorageError, SpecError) as exc:
                     s.driver = None
                     self._set_state(s, "faulted", str(exc))
@@ -505,6 +528,7 @@ class LabHead:
         if (s.state, s.reason) == (state, reason):
             return
         s.state, s.reason = state, reason
+        self._want_drivers = True
         self._record({"e": "state", "name": s.name, "state": state, "reason": reason})
         if state not in ("running", "held"):  # a held search keeps its demand: it is held for it
             if s.demand is not None and s.demand[0] != 0:
@@ -527,9 +551,20 @@ class LabHead:
     def _stats(self, s: _Search) -> dict[str, Any]:
         if s.driver is not None:
             return s.driver.statistics()
-        if s.last_stats:
-            return s.last_stats
-        return {}
+        if not s.last_stats and s.state not in _ACTIVE:
+            # Over before this head started: read its state back from the store, once.
+            from rungway.scheduler.head.executor import InlineExecutor
+
+            try:
+                d = SearchDriver(s.spec, s.spec_text, self.store_root, InlineExecutor(0.0))
+            except (StorageError, SpecError) as exc:
+                log.warning("search %s: cannot read its state: %s", s.name, exc)
+                return {}
+            try:
+                s.last_stats = d.statistics()
+            finally:
+                d.journal.close()
+        return s.last_stats
 
     def _info(self, s: _Search) -> SearchInfo:
         stats = self._stats(s)
@@ -543,6 +578,12 @@ class LabHead:
             cpu_seconds=float(stats.get("cpu_seconds", 0.0)),
             best_value=_finite(best.get("value")), best_trial=best.get("trial"),
         )
+
+
+def _news(driver: SearchDriver) -> bool:
+    """Whether the search's executor has something for it (an executor that cannot tell: yes)."""
+    news = getattr(driver.executor, "news", None)
+    return True if news is None else bool(news())
 
 
 def _segment_id(search: str, trial: int, attempt: int) -> str:

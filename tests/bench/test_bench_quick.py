@@ -165,7 +165,25 @@ def check_sim_accuracy(data: dict[str, Any]) -> None:
     assert isinstance(search["met"], bool) and isinstance(data["met"], bool)
 
 
+def check_sharing_round(data: dict[str, Any]) -> None:
+    assert (data["teams"], data["searches"], data["waiting"]) == (50, 500, 10_000)  # the sizes
+    for case in ("steady", "cold", "preempting"):
+        assert 0 < data[case]["median_ms"] <= data[case]["p99_ms"]
+    assert data["steady"]["rounds"] == 20 and data["steady"]["grants_per_round"] > 0
+    assert data["preempting"]["preemptions_per_round"] > 0
+
+
+def check_lab_round(data: dict[str, Any]) -> None:
+    assert (data["teams"], data["searches"]) == (10, 50)  # --quick sizes
+    assert data["running_segments"] > 0 and data["segments_ended_per_turn"] > 0
+    assert data["waiting_segments_counted"] > 0
+    for key in ("turn_ms", "sharing_round_ms"):
+        assert 0 < data[key]["median"] <= data[key]["p99"]
+    number(data["first_turn_ms"])
+
+
 CHECKS = {
+    "sharing_round": check_sharing_round, "lab_round": check_lab_round,
     "core_cost": check_core_cost, "dispatch": check_dispatch, "utilization": check_utilization,
     "quality": check_quality, "recovery": check_recovery, "journal_replay": check_journal_replay,
     "sim_scale": check_sim_scale, "sim_accuracy": check_sim_accuracy,
@@ -196,6 +214,7 @@ def test_the_runner_renders_every_section(dirs: dict[str, Path]) -> None:
     assert all(not r["errors"] for r in results), [r["errors"] for r in results]
     for heading in ("## Summary", "## Scheduling core", "## Dispatch overhead", "## Utilization",
                     "## Search quality per CPU-second", "## Recovery", "## Journal replay", "## Simulator scale",
+                    "## Sharing round", "## Lab head turn",
                     "## Simulator accuracy"):
         assert heading in text
     summary = text.split("## Summary", 1)[1].split("## Runs", 1)[0]
