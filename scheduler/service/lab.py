@@ -216,7 +216,7 @@ class LabHead:
             s = self._get(name)
             if s.state not in ("running", "held"):
                 raise WrongState(f"search {name!r} is {s.state}; only a running or held search can be paused")
-            self._set_state(s, "paused", "paused by request")
+            self._set_state(s, "paused", None)
             deadline = self.clock() + self.config.head.preempt_deadline
             if s.driver is not None:
                 for key in s.driver.running_segments():
@@ -238,7 +238,7 @@ class LabHead:
             if s.state in ("finished", "cancelled"):
                 raise WrongState(f"search {name!r} is already {s.state}")
             self._close_driver(s)
-            self._set_state(s, "cancelled", "cancelled by request")
+            self._set_state(s, "cancelled", None)
             return self._info(s)
 
     def usage(self, team: str | None = None, period: str = "month", since: float | None = None,
@@ -267,6 +267,9 @@ class LabHead:
                 ))
             searches = [SearchUsage(team=r["team"], search=r["search"], cpu_hours=r["cpu_hours"], segments=r["segments"])
                         for r in per_search if team is None or r["team"] == team]
+            charged = {u.search for u in searches}
+            searches += [SearchUsage(team=s.team, search=s.name, cpu_hours=0.0, segments=0) for s in self._ordered()
+                         if s.name not in charged and (team is None or s.team == team)]  # nothing charged yet
             return UsageReport(period=period, since=since, until=until, teams=teams, searches=searches)
 
     # ---- lifecycle -------------------------------------------------------------------------

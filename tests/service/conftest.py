@@ -15,6 +15,7 @@ from __future__ import annotations
 import threading
 import time
 from collections.abc import Callable, Iterator
+from typing import Any
 
 import pytest
 
@@ -169,12 +170,25 @@ class FakeHead:
                                teams=rows, searches=per_search)
 
 
-@pytest.fixture
-def head(lab_config: LabConfig) -> Iterator[FakeHead]:
-    fake = FakeHead(lab_config)
-    fake.start()
-    yield fake
-    fake.stop()
+def real_head(tokens: dict[str, str], store: Any) -> Any:
+    """The real ``LabHead`` on its own store, with in-process executors and its loop not
+    started: the API's rules are checked against what the head itself refuses and returns
+    (nothing is run, so the fixtures' objective never needs to exist)."""
+    from rungway.scheduler.head.executor import InlinePool
+    from rungway.scheduler.service.lab import LabHead
+
+    config = parse_lab_config(lab_toml(tokens, head=f'store = "{store}"'), str(store) + ".toml")
+    return LabHead(config, InlinePool(cpus=4))
+
+
+@pytest.fixture(params=["fake", "real"])
+def head(request: pytest.FixtureRequest, lab_config: LabConfig, tokens: dict[str, str],
+         tmp_path: Any) -> Iterator[Any]:
+    made = FakeHead(lab_config) if request.param == "fake" else real_head(tokens, tmp_path / "store")
+    if request.param == "fake":
+        made.start()
+    yield made
+    made.stop()
 
 
 def spec_text(name: str, *, metric: str = "loss") -> str:
@@ -209,3 +223,9 @@ def fake_head_class() -> type[FakeHead]:
 @pytest.fixture(scope="session")
 def make_spec() -> Callable[..., str]:
     return spec_text
+
+
+@pytest.fixture(scope="session")
+def make_real_head(tokens: dict[str, str]) -> Callable[[Any], Any]:
+    """``make_real_head(store_folder)``: the real head (see :func:`real_head`)."""
+    return lambda store: real_head(tokens, store)

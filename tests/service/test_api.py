@@ -378,9 +378,13 @@ def test_the_audit_log_has_one_line_per_request_and_never_a_token(http: TestClie
 # ---- every operation, property-based --------------------------------------------------------
 
 
-@pytest.fixture(scope="module")
-def lab_schema(fake_head_class: Any, lab_config: Any, authenticator: Authenticator, tokens: dict[str, str], make_spec: Any) -> Any:
-    head = fake_head_class(lab_config)
+@pytest.fixture(scope="module", params=["fake", "real"])
+def lab_schema(request: pytest.FixtureRequest, fake_head_class: Any, lab_config: Any, authenticator: Authenticator,
+               tokens: dict[str, str], make_spec: Any, make_real_head: Any,
+               tmp_path_factory: pytest.TempPathFactory) -> Any:
+    # The real head too: whatever the fuzzer sends, the head itself must not fail (no 5xx).
+    head = (fake_head_class(lab_config) if request.param == "fake"
+            else make_real_head(tmp_path_factory.mktemp("fuzzed") / "store"))
     for team in ("vision", "speech"):
         head.submit(team, make_spec(f"{team}-1"))
     app = build(head, authenticator, lab_config)
