@@ -129,7 +129,11 @@ def _table(headers: Sequence[str], rows: Sequence[Sequence[Any]]) -> None:
 
 
 def _num(value: float | None, digits: int = 2) -> str | None:
-    return None if value is None else f"{value:.{digits}f}"
+    if value is None:
+        return None
+    if 0 < abs(value) < 10 ** -digits:  # a small but real figure is not shown as 0
+        return f"{value:.2g}"
+    return f"{value:.{digits}f}"
 
 
 def _best(search: dict[str, Any]) -> str | None:
@@ -155,7 +159,7 @@ def _show_one(search: dict[str, Any]) -> None:
     print(f"{search['name']} ({search['team']}): {_state(search)}, priority {search['priority']}")
     print(f"  {search['metric']} ({search['direction']}); best {_best(search) or 'none yet'}")
     print(f"  {search['trials']} trials, {search['segments']} segments ({search['running_segments']} running), "
-          f"{search['cpus_busy']:g} CPUs busy, {search['cpu_seconds'] / 3600:.2f} CPU-hours")
+          f"{search['cpus_busy']:g} CPUs busy, {_num(search['cpu_seconds'] / 3600)} CPU-hours")
     board = search.get("leaderboard") or []
     if board:
         keys = list(dict.fromkeys(k for row in board for k in row))

@@ -94,6 +94,7 @@ class _Search:
     preempted: set[tuple[int, int]] = field(default_factory=set)
     wall_started: dict[tuple[int, int], float] = field(default_factory=dict)
     last_step: float = -math.inf
+    viewer: SearchDriver | None = None  # a finished search's state, read back for showing
 
 
 class LabHead:
@@ -197,8 +198,9 @@ class LabHead:
             info = self._info(s).model_dump()
             stats = self._stats(s)
             leaderboard = []
-            if s.driver is not None:
-                core = s.driver.core
+            source = s.driver if s.driver is not None else s.viewer
+            if source is not None:
+                core = source.core
                 for t in core.leaderboard(10):
                     leaderboard.append({"trial": t.id, "rung": t.rung, "budget": float(t.budget), "state": t.state,
                                         "value": None if t.loss is None else _finite(core.value_of(t.loss)),
@@ -381,7 +383,7 @@ class LabHead:
         if d.over:
             report = d.end()
             s.last_stats = report.statistics
-            s.driver = None
+            s.driver, s.viewer = None, d
             self._withdraw(s)
             self._pool.forget(s.name)  # type: ignore[union-attr]
             if report.paused_reason:
@@ -423,6 +425,7 @@ class LabHead:
         try:
             report = d.end()
             s.last_stats = report.statistics
+            s.viewer = d
         except StorageError as exc:
             log.warning("search %s: %s", s.name, exc)
         self._withdraw(s)
@@ -565,6 +568,7 @@ class LabHead:
                 return {}
             try:
                 s.last_stats = d.statistics()
+                s.viewer = d  # kept for its leaderboard
             finally:
                 d.journal.close()
         return s.last_stats

@@ -116,6 +116,7 @@ def test_a_restarted_head_finishes_every_search_and_keeps_usage(tmp_path: Path) 
     for name in ("v-two", "s-two"):
         info = second.search(name)
         assert info.state == "finished" and info.trials == 12
+        assert info.leaderboard and info.leaderboard[0]["value"] == info.best_value
         exactly_once(tmp_path, name)
     used_after = {t.team: t.used_cpu_hours for t in second.usage(period="all").teams}
     assert used_after["vision"] >= used_before["vision"]
