@@ -18,6 +18,7 @@ from .costs import (
     HeavyTailCost,
     LinearCost,
     ValueModel,
+    dispatch_gap_from_measurements,
     segments_from_measurements,
 )
 from .planner import DEFAULT_OVERHEAD_SECONDS, DEFAULT_SECONDS_PER_UNIT, Interval, PlanEstimate, plan_search
@@ -35,6 +36,7 @@ __all__ = [
     "PlanEstimate",
     "SimResult",
     "ValueModel",
+    "dispatch_gap_from_measurements",
     "plan_search",
     "segments_from_measurements",
     "simulate",

@@ -133,6 +133,7 @@ def simulate(
     target: float | None = None,
     until: float | None = None,
     max_events: int | None = None,
+    dispatch_gap: float = 0.0,
 ) -> SimResult:
     """Run ``plan`` with ``sampler`` on a simulated cluster until the search drains (or
     ``until`` simulated seconds, or ``max_events`` events).
@@ -142,7 +143,9 @@ def simulate(
     ``resumable=False`` models the plain objective form: every segment trains again from
     budget 0, so it costs ``cost(config, 0, target, rung)``. ``requeue_delay``: seconds from a
     node failure until its segments are reported lost; ``repair_seconds``: until the node is
-    back. ``seed`` seeds the cost, value and failure draws (the sampler has its own).
+    back. ``dispatch_gap``: seconds a slot stands empty between a segment's end and the next
+    one's start (the head's and Ray's round trip; not CPU time). ``seed`` seeds the cost,
+    value and failure draws (the sampler has its own).
     """
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
         raise ValueError(f"workers must be an integer >= 1 (got {workers!r})")
@@ -157,8 +160,8 @@ def simulate(
         cap = min(n_slots, int(math.floor(quota_cpus / cpus_per_trial + 1e-9)))
         if cap < 1:
             raise ValueError(f"a quota of {quota_cpus} CPUs cannot run a trial needing {cpus_per_trial}")
-    if failure_rate_per_hour < 0 or requeue_delay < 0 or repair_seconds < 0:
-        raise ValueError("failure_rate_per_hour, requeue_delay and repair_seconds must be >= 0")
+    if failure_rate_per_hour < 0 or requeue_delay < 0 or repair_seconds < 0 or not dispatch_gap >= 0:
+        raise ValueError("failure_rate_per_hour, requeue_delay, repair_seconds and dispatch_gap must be >= 0")
     if (not plan.synchronous and plan.max_trials is None and admit_until is None and max_cpu_hours is None
             and until is None and max_events is None):
         raise ValueError(
@@ -228,6 +231,7 @@ def simulate(
         s_mi[slot] = 0
         begin = seg.start_budget if resumable else 0
         s_budget[slot] = begin
+        at += dispatch_gap  # the slot waits for the segment to reach it; that wait is not busy
         s_since[slot] = at
         running += 1
         push(heap, (at + cost_fn(seg.config, begin, miles[0], seg.rung), seq, _DONE, slot, tok))

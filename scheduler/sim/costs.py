@@ -220,6 +220,33 @@ def segments_from_measurements(frame: pd.DataFrame, *, from_scratch: bool = Fals
     return seg[["trial", "attempt", "start", "target", "advance", "seconds"]].reset_index(drop=True)
 
 
+def dispatch_gap_from_measurements(frame: pd.DataFrame, *, longest: float = 1.0) -> float:
+    """The typical time a worker slot stands empty between one segment's end and the next
+    segment's start on the same node, in a finished search's measurements: the head's and
+    Ray's round trip, which a cost model of the segments alone does not see.
+
+    The median, over segment ends, of the wait until the node's next segment start; waits
+    of ``longest`` seconds or more are left out (the search had nothing to run then, e.g.
+    at a barrier or in its last rung, which the simulator plays out itself). 0 when no
+    segment followed another.
+    """
+    rows = frame[frame["final"].astype(bool)].dropna(subset=["started_at", "ended_at"])
+    if rows.empty:
+        return 0.0
+    node = rows["node"] if "node" in rows.columns else None
+    seg = rows.assign(_node=node if node is not None else "").groupby(["trial", "attempt"], sort=False).agg(
+        node=("_node", "first"), started=("started_at", "min"), ended=("ended_at", "max"))
+    waits: list[float] = []
+    for _, on_node in seg.groupby("node"):
+        starts = np.sort(on_node["started"].to_numpy(dtype="datetime64[ns]").astype(np.int64)) / 1e9
+        ends = np.sort(on_node["ended"].to_numpy(dtype="datetime64[ns]").astype(np.int64)) / 1e9
+        following = np.searchsorted(starts, ends, side="left")
+        found = following < len(starts)
+        gaps = starts[following[found]] - ends[found]
+        waits.extend(g for g in gaps.tolist() if 0 <= g < longest)
+    return float(np.median(waits)) if waits else 0.0
+
+
 @dataclass(frozen=True)
 class FittedCost(CostModel):
     """``overhead + (target - start) * seconds_per_unit + e`` with ``e`` drawn uniformly from

@@ -22,7 +22,7 @@ import numpy as np
 
 from ..core.errors import SpecError
 from .cluster import SimResult, simulate
-from .costs import CostModel, FittedCost, LinearCost, ValueModel
+from .costs import CostModel, FittedCost, LinearCost, ValueModel, dispatch_gap_from_measurements
 
 __all__ = [
     "DEFAULT_OVERHEAD_SECONDS",
@@ -193,6 +193,7 @@ def plan_search(
     resumable: bool | None = None,
     value_model: ValueModel | None = None,
     max_events: int = 50_000_000,
+    dispatch_gap: float | None = None,
 ) -> PlanEstimate:
     """Simulate ``spec``'s search ``repeats`` times on ``workers`` workers; see the module doc.
 
@@ -200,7 +201,9 @@ def plan_search(
     measurements frame (``SearchFiles.read_measurements()``) or anything with a
     ``read_measurements()`` method; it is used when ``cost`` is None. ``resumable`` (None:
     look at the objective's form) says whether promoted segments resume from a checkpoint or
-    train again from budget 0. Run ``r`` uses seed ``seed + r`` for everything random.
+    train again from budget 0. ``dispatch_gap`` (None: fitted with the costs, else 0) is how
+    long a slot stands empty between segments. Run ``r`` uses seed ``seed + r`` for
+    everything random.
     """
     if isinstance(repeats, bool) or not isinstance(repeats, int) or repeats < 1:
         raise SpecError(f"must be an integer >= 1 (got {repeats!r})", field="repeats")
@@ -233,6 +236,11 @@ def plan_search(
             cost = FittedCost.from_measurements(frame, from_scratch=not resumable)
         except ValueError as exc:
             raise SpecError(f"cannot fit a cost model to those measurements: {exc}", field="from_search") from None
+        if dispatch_gap is None:
+            dispatch_gap = dispatch_gap_from_measurements(frame)
+            notes.append(f"between segments a slot waited {dispatch_gap * 1e3:.3g} ms (median) for the next one "
+                         "in the search fitted from; simulated so too")
+    dispatch_gap = dispatch_gap or 0.0
     if cost is None:
         cost = LinearCost(DEFAULT_SECONDS_PER_UNIT, DEFAULT_OVERHEAD_SECONDS)
         is_default = True
@@ -267,7 +275,7 @@ def plan_search(
             cpus_per_worker=cpus_per_worker, failure_rate_per_hour=failure_rate_per_hour,
             requeue_delay=requeue_delay, repair_seconds=repair_seconds,
             quota_cpus=quota_cpus, resumable=resumable, admit_until=deadline, max_cpu_hours=cpu_limit,
-            seed=run_seed, max_events=max_events,
+            seed=run_seed, max_events=max_events, dispatch_gap=dispatch_gap,
         ), core=None))
     shapes = {tuple(len(b) for b in run.trials_per_rung) for run in runs}
     assert len(shapes) == 1, shapes

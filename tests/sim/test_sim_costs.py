@@ -16,7 +16,14 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from rungway.scheduler.sim import FittedCost, FixedCost, HeavyTailCost, LinearCost, segments_from_measurements
+from rungway.scheduler.sim import (
+    FittedCost,
+    FixedCost,
+    HeavyTailCost,
+    LinearCost,
+    dispatch_gap_from_measurements,
+    segments_from_measurements,
+)
 
 SLOPE, OVERHEAD = 2.5, 4.0
 BUDGETS = (1, 3, 9, 27)
@@ -121,3 +128,32 @@ def test_fixed_and_linear_costs():
         LinearCost(0.0)
     with pytest.raises(ValueError):
         HeavyTailCost(1.0, distribution="pareto", alpha=1.0)
+
+
+def test_the_dispatch_gap_is_the_typical_wait_between_segments_on_a_node():
+    frame, truth = _frame()
+    # The synthetic search leaves exactly 1 s between one segment's end and the next start
+    # (and 6 s after a lost attempt's progress rows, which counts as no segment).
+    assert dispatch_gap_from_measurements(frame, longest=2.0) == pytest.approx(1.0)
+    assert dispatch_gap_from_measurements(frame, longest=1.0) == 0.0  # waits of 1 s or more left out
+    # Per node: on a second node that ran the same segments 0.25 s later, each end is followed
+    # by that node's own next start, not by the other node's.
+    shifted = frame.assign(node="n2", trial=frame["trial"] + 1000, started_at=frame["started_at"] + pd.Timedelta(seconds=0.25),
+                           ended_at=frame["ended_at"] + pd.Timedelta(seconds=0.25))
+    assert dispatch_gap_from_measurements(pd.concat([frame, shifted]), longest=2.0) == pytest.approx(1.0)
+
+
+def test_a_dispatch_gap_costs_wall_time_and_no_cpu_time():
+    from rungway.scheduler.core.plan import SearchPlan
+    from rungway.scheduler.sim import simulate
+    from rungway.scheduler.testing import CountingSampler
+
+    plan = SearchPlan(mode="full-budget", min_budget=1, max_budget=1, eta=3, max_trials=10)
+    plain = simulate(plan, CountingSampler(), 1, FixedCost(2.0))
+    gapped = simulate(plan, CountingSampler(), 1, FixedCost(2.0), dispatch_gap=0.5)
+    # One slot runs the 10 segments one after another: 10 x 2 s, plus 10 x 0.5 s of waiting.
+    assert plain.wall_seconds == pytest.approx(20.0)
+    assert gapped.wall_seconds == pytest.approx(25.0)
+    assert gapped.cpu_hours == pytest.approx(plain.cpu_hours) == pytest.approx(20.0 / 3600)
+    with pytest.raises(ValueError, match="dispatch_gap"):
+        simulate(plan, CountingSampler(), 1, FixedCost(2.0), dispatch_gap=-1.0)
