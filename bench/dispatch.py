@@ -6,7 +6,13 @@ are the real thing: a core decision, a Ray task that runs the runner, a measurem
 file written to the store, and the result applied to the core. The objective does nothing
 (or sleeps, for the busy-fraction figure).
 
-    .venv/bin/python bench/dispatch.py [--segments 2000] [--sleep-ms 100] [--json out.json]
+Throughput on a shared machine moves with the load, so the script also charges CPU time per
+segment (Linux: /proc) to who spent it, for both sides of each repeat: the driver process (the
+head, or the loop submitting raw tasks, with Ray's own threads in that process), the Ray worker
+processes, the relay actor, and Ray's daemons (raylet, GCS, agents). A process started during
+the run (the relay) is charged its start-up too.
+
+    .venv/bin/python bench/dispatch.py [--segments 2000] [--sleep-segments 200] [--repeats 3] [--json out.json]
 """
 
 from __future__ import annotations
@@ -23,6 +29,67 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 os.environ["PYTHONPATH"] = os.pathsep.join([str(HERE), os.environ.get("PYTHONPATH", "")])
+
+
+_TICK = os.sysconf("SC_CLK_TCK") if hasattr(os, "sysconf") else 100
+ROLES = ("driver", "workers", "relay", "ray")
+_RAY_SERVICES = ("ray::DashboardAgent", "ray::RuntimeEnvAgent")
+
+
+def _role(pid: int, argv: list[str]) -> str:
+    """Who a process is, from its command line (Ray workers retitle themselves ``ray::...``)."""
+    if pid == os.getpid():
+        return "driver"
+    first = argv[0] if argv else ""
+    if first.startswith("ray::Relay"):
+        return "relay"
+    if first.startswith("ray::") and not first.startswith(_RAY_SERVICES):
+        return "workers"
+    return "ray"  # raylet, GCS, their agents, the log monitor
+
+
+def cpu_by_process() -> dict[int, tuple[str, float]]:
+    """(role, CPU seconds so far: user + system) of this process and its descendants (the Ray
+    instance it started); other people's processes on the machine are left out. Empty where
+    /proc is missing."""
+    if not os.path.isdir("/proc"):
+        return {}
+    procs: dict[int, tuple[int, float, list[str]]] = {}
+    for entry in os.listdir("/proc"):
+        if not entry.isdigit():
+            continue
+        try:
+            with open(f"/proc/{entry}/stat") as f:
+                stat = f.read()
+            with open(f"/proc/{entry}/cmdline", "rb") as f:
+                argv = [a.decode(errors="replace") for a in f.read().split(b"\0") if a]
+        except OSError:
+            continue
+        fields = stat[stat.rfind(")") + 2:].split()
+        procs[int(entry)] = (int(fields[1]), (int(fields[11]) + int(fields[12])) / _TICK, argv)
+    out = {}
+    for pid, (_, seconds, argv) in procs.items():
+        ancestor = pid
+        while ancestor > 1 and ancestor != os.getpid() and ancestor in procs:
+            ancestor = procs[ancestor][0]
+        if ancestor == os.getpid():
+            out[pid] = (_role(pid, argv), seconds)
+    return out
+
+
+def charged(run, count: int):  # type: ignore[no-untyped-def]
+    """``run()``'s result and the CPU milliseconds per segment it cost each role. A process is
+    charged to the role it has at the end (Ray may turn an idle worker into the relay); one
+    that exited during the run is not counted."""
+    before = cpu_by_process()
+    result = run()
+    after = cpu_by_process()
+    if not after:
+        return result, {}
+    spent = dict.fromkeys(ROLES, 0.0)
+    for pid, (role, seconds) in after.items():
+        spent[role] += seconds - before.get(pid, (role, 0.0))[1]
+    return result, {role: 1e3 * seconds / count for role, seconds in spent.items()}
 
 
 def noop_task_factory():
@@ -94,6 +161,14 @@ def through_rungway(count: int, objective: str, root: str) -> tuple[float, float
     return count / wall, busy / (slots * wall)
 
 
+def _cpu_medians(runs: list[dict[str, float]]) -> dict[str, float]:
+    if not runs or not runs[0]:
+        return {}
+    out = {role: statistics.median(run[role] for run in runs) for role in runs[0]}
+    out["total"] = statistics.median(sum(run.values()) for run in runs)
+    return out
+
+
 def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--segments", type=int, default=2000)
@@ -108,10 +183,13 @@ def main() -> None:
     ray.init(num_cpus=args.cpus, include_dashboard=False, logging_level="ERROR")
     root = tempfile.mkdtemp(prefix="rungway-bench-")
     raw, ours, ratios, busy, steady = [], [], [], [], []
+    cpu: dict[str, list[dict[str, float]]] = {"raw": [], "rungway": []}
     through_rungway(50, "noop", root)  # warm-up: imports on the workers
     for _ in range(args.repeats):
-        r = raw_ray(args.segments, args.cpus)
-        o, _ = through_rungway(args.segments, "noop", root)
+        r, cpu_raw = charged(lambda: raw_ray(args.segments, args.cpus), args.segments)
+        (o, _), cpu_ours = charged(lambda: through_rungway(args.segments, "noop", root), args.segments)
+        cpu["raw"].append(cpu_raw)
+        cpu["rungway"].append(cpu_ours)
         raw.append(r)
         ours.append(o)
         ratios.append(o / r)
@@ -126,6 +204,8 @@ def main() -> None:
         "ratio": {"median": statistics.median(ratios), "min": min(ratios), "max": max(ratios)},
         "busy_fraction_100ms": {"median": statistics.median(busy), "min": min(busy), "max": max(busy)},
         "busy_fraction_100ms_steady": {"median": statistics.median(steady), "min": min(steady), "max": max(steady)},
+        # CPU ms per no-op segment by role (median over repeats), and in all; {} without /proc
+        "cpu_ms_per_segment": {side: _cpu_medians(runs) for side, runs in cpu.items()},
     }
     print(json.dumps(result, indent=2))
     if args.json:

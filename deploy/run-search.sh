@@ -8,7 +8,7 @@
 # run it on a machine of the cluster, normally the Ray head. Running the same command again
 # resumes a search that was stopped (Ctrl-C, a reboot, a lost machine) from the store.
 # deploy/systemd/rungway-search@.service runs it for /etc/rungway/searches/NAME.toml; the
-# long-running multi-team service will be a separate unit, rungway-head.service.
+# lab's multi-team head is a separate unit, rungway-head.service (docs/service.md).
 #
 # Exit status is rungway's: 0 done, 2 a mistake in the spec, 3 paused on a storage fault,
 # 130 stopped by Ctrl-C (SIGINT).

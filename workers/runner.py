@@ -218,7 +218,8 @@ def run_segment(
     summary.cpu_seconds = time.process_time() - cpu_start
     if returned is _STOPPED:
         summary.budget = ctx.measurements[-1][0] if ctx.measurements else start
-    elif ctx.should_yield and objective.form == "resumable" and _short_of_target(ctx, order):
+    elif objective.form == "resumable" and _short_of_target(ctx, order) and ctx.should_yield:
+        # Asked only when it could matter: the flag may cost a round trip to the head.
         summary.outcome = "yielded"
         summary.budget = ctx.saved_budget if ctx.saved_budget is not None else start
     else:

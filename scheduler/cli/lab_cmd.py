@@ -49,7 +49,10 @@ def add_parsers(sub: Any) -> None:
                         ("resume", "resume a paused search"), ("cancel", "cancel a search for good")):
         actions.add_parser(verb, parents=[common], help=words).add_argument("name")
     usage = actions.add_parser("usage", parents=[common], help="CPU-hours used against each team's allowance")
-    usage.add_argument("--period", choices=["day", "week", "month", "all"], default="month")
+    usage.add_argument("--period", choices=["day", "week", "month", "all"],
+                       help="default: the lab's allowance period (head.allowance_period)")
+    usage.add_argument("--since", type=float, metavar="UNIX_TIME", help="count from this time instead of the period's start")
+    usage.add_argument("--until", type=float, metavar="UNIX_TIME", help="count up to this time (default: now)")
     usage.add_argument("--team", help="only this team (admins)")
     actions.add_parser("whoami", parents=[common], help="who your token belongs to")
     token = actions.add_parser("token", help="make a new token and the hash line for the lab config (needs no head)")
@@ -99,7 +102,7 @@ def _ask(client: Any, args: argparse.Namespace) -> Any:
     if action in ("pause", "resume", "cancel"):
         return getattr(client, action)(args.name)
     if action == "usage":
-        return client.usage(args.period, team=args.team)
+        return client.usage(args.period, since=args.since, until=args.until, team=args.team)
     return client.whoami()
 
 

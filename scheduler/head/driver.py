@@ -269,11 +269,14 @@ class SearchDriver:
         if not orphans:
             return
         finals: dict[tuple[int, int, int], float] = {}
+        times: dict[tuple[int, int], tuple[float, float, str]] = {}  # a kept segment's worker times
         frame = self.files.read_measurements()
         if not frame.empty:
             rows = frame[(frame["final"]) & (frame["metric"] == self.spec.metric)]
             for row in rows.itertuples():
                 finals[(int(row.trial), int(row.attempt), int(row.rung))] = float(row.value)
+                times[(int(row.trial), int(row.attempt))] = (row.started_at.timestamp(), row.ended_at.timestamp(),
+                                                             str(row.node or ""))
         entries = []
         for view in orphans:
             rung = view.rung
@@ -290,6 +293,15 @@ class SearchDriver:
         for entry in entries:
             self._log(entry)
         self._commit()
+        if self.listener is not None:  # results kept from the store are charged as they ran
+            for entry in entries:
+                key = (entry["t"], entry["a"])
+                if entry["e"] == "rep" and key in times:
+                    started, ended, node = times.pop(key)
+                    summary = SegmentSummary(entry["t"], entry["a"], entry["r"], "result", node=node,
+                                             started=started, ended=ended)
+                    self.listener.ended(self.spec.name, entry["t"], entry["a"], entry["r"], "result",
+                                        self.spec.resources.cpus * max(0.0, ended - started), summary, node)
         log.info("settled %d segments of the previous head: %d results kept from the store",
                  len(orphans), sum(1 for e in entries if e["e"] == "rep"))
 

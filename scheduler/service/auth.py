@@ -168,6 +168,15 @@ class Authenticator:
                     self._cache.popitem(last=False)
         return caller
 
+    def known(self, token: str | None) -> Caller | None:
+        """The caller of a token already verified in this process, without hashing (None if
+        it was not, or did not match): lets a valid caller through while its address is
+        locked out for others' failed attempts."""
+        if not token or not isinstance(token, str):
+            return None
+        with self._lock:
+            return self._cache.get(_keyed_digest(token))
+
     def _match(self, token: str) -> Caller | None:
         # Stopping at the first match only tells a token's holder where their own entry
         # stands; a token that matches nothing always costs the full scan.

@@ -116,7 +116,7 @@ class LabClient:
     def cancel(self, name: str) -> dict[str, Any]:
         return self._call("POST", f"/v1/searches/{_quote(name)}/cancel")
 
-    def usage(self, period: str = "month", *, since: float | None = None, until: float | None = None,
+    def usage(self, period: str | None = None, *, since: float | None = None, until: float | None = None,
               team: str | None = None) -> dict[str, Any]:
         return self._call("GET", "/v1/usage", {"period": period, "since": since, "until": until, "team": team})
 

@@ -181,7 +181,7 @@ class HeadSection(BaseModel):
     host: Annotated[str, _text('a host name or address, e.g. host = "127.0.0.1"', empty=False)] = "127.0.0.1"
     port: Annotated[int, _integer(0, 65535, " (0 picks a free port)")] = 8470
     allow_remote: Flag = False
-    store: Annotated[str, _text('a folder path or a URI, e.g. store = "rungway-store"', empty=False)] = "rungway-store"
+    store: Annotated[str, _text('a folder path, e.g. store = "rungway-store"', empty=False)] = "rungway-store"
     ray_address: Annotated[str, _text('a Ray address, or "" to start an embedded Ray')] = ""
     ray_cpus: Annotated[int, _integer(0, 1 << 20, " (0: all CPUs of the machine)")] = 0
     preempt_deadline: Annotated[float, _number(0)] = 60.0
@@ -200,6 +200,12 @@ class HeadSection(BaseModel):
                 "anyone who can reach it may try tokens. Set allow_remote = true (and put TLS in "
                 'front), or use host = "127.0.0.1"',
                 field="allow_remote",
+            )
+        if "://" in self.store and not self.store.startswith("file://"):
+            raise SpecError(
+                f"the head keeps its journals in the store, so it must be a path (local disk or NFS), "
+                f"not {_show(self.store)}; mount it and give the mount's path",
+                field="store",
             )
         if self.ray_address and self.ray_cpus:
             raise SpecError(

@@ -64,6 +64,7 @@ _IDLE_STEP = 0.25  # seconds between steps of a search that has nothing new
 # A search's snapshot only shortens its journal replay at restart; with hundreds of searches
 # one every few seconds each would be most of the head's disk writes.
 _PERSIST_SECONDS = 30.0
+_COMPACT_SECONDS = 60.0  # the ledger's part files are merged (once 64 or more) this often
 
 
 class PoolLike:
@@ -127,6 +128,7 @@ class LabHead:
         self._period_began = period_start(config.head.allowance_period, wall())
         self.loop_error: str | None = None
         self._want_drivers = True  # a search may need a driver opened (set on every state change)
+        self._ledger_compacted = clock()
         self.rounds = 0
         self.sharing = SharingState()
         self._journal = Journal(self._lab_dir() / "journal")
@@ -180,9 +182,11 @@ class LabHead:
             files = self.store.search(spec.name)
             if files.read_spec() is not None:
                 raise NameTaken(f"the store already holds a search named {spec.name!r}; give yours another name")
-            files.write_spec(spec_text)
             s = _Search(spec.name, team, priority, self.wall(), spec, spec_text)
+            # Journaled first: a head killed between the two has a submission whose spec is
+            # missing (skipped at restart, the name free again), never a spec nobody owns.
             self._record({"e": "submit", "name": s.name, "team": team, "priority": priority, "at": s.submitted_at})
+            files.write_spec(spec_text)
             self._searches[s.name] = s
             self._want_drivers = True
             log.info("team %s submitted search %s (priority %d)", team, s.name, priority)
@@ -243,8 +247,9 @@ class LabHead:
             self._set_state(s, "cancelled", None)
             return self._info(s)
 
-    def usage(self, team: str | None = None, period: str = "month", since: float | None = None,
+    def usage(self, team: str | None = None, period: str | None = None, since: float | None = None,
               until: float | None = None) -> UsageReport:
+        period = period or self.config.head.allowance_period
         now = self.wall()
         if since is None and period != "all":
             since = period_start(period, now)
@@ -366,6 +371,9 @@ class LabHead:
                     self._step(s, grant, now)
                     s.last_step = now
             self._write_ledger()
+            if now - self._ledger_compacted >= _COMPACT_SECONDS:
+                self._ledger_compacted = now
+                self.ledger.compact(min_parts=64)
 
     def _step(self, s: _Search, grant: int, now: float) -> None:
         d = s.driver
@@ -404,7 +412,14 @@ class LabHead:
         """Searches that should run but have no driver yet (new, resumed or restored)."""
         self._want_drivers = False
         now = self.clock()
+        teams = {t.name for t in self.config.teams}
         for i, s in enumerate(self._ordered()):
+            if s.team not in teams:  # removed from the lab config since it was submitted
+                if s.state in _ACTIVE:
+                    self._close_driver(s)
+                    self._set_state(s, "held", f"team {s.team!r} is not in the lab config")
+                    log.warning("search %s is held: its team %s is not in the lab config", s.name, s.team)
+                continue
             if s.driver is None and s.state in _ACTIVE:
                 # Idle searches' periodic steps are spread over the interval, not all in one turn.
                 s.last_step = now - _IDLE_STEP * ((i * 0.6180339887) % 1.0)

@@ -156,7 +156,8 @@ class FakeHead:
     def cancel(self, name: str) -> SearchInfo:
         return self._move(name, "cancel", {"running", "paused", "held", "faulted"}, "cancelled")
 
-    def usage(self, team: str | None, period: str, since: float | None, until: float | None) -> UsageReport:
+    def usage(self, team: str | None, period: str | None, since: float | None, until: float | None) -> UsageReport:
+        period = period or self._config.head.allowance_period  # as the real head
         with self._lock:
             rows = [
                 TeamUsage(team=t.name, guarantee_cpus=t.guarantee_cpus, cap_cpus=t.cap_cpus, weight=t.weight,

@@ -73,9 +73,11 @@ def test_example_loads_with_defaults(tmp_path: Path) -> None:
         config.team("nobody")
 
 
-def test_store_uris_and_absolute_paths_are_kept(tmp_path: Path) -> None:
-    uri = parse_lab_config('[head]\nstore = "s3://bucket/rungway"\n')
-    assert uri.store_root == "s3://bucket/rungway" and uri.log_path is None
+def test_store_paths_are_kept_and_a_uri_the_head_cannot_journal_on_is_refused(tmp_path: Path) -> None:
+    with pytest.raises(SpecFileError, match=r"head\.store: .*must be a path"):
+        parse_lab_config('[head]\nstore = "s3://bucket/rungway"\n')
+    local = parse_lab_config(f'[head]\nstore = "file://{tmp_path}/x"\n')
+    assert local.store_root == f"file://{tmp_path}/x" and local.log_path is None
     absolute = parse_lab_config(f'[head]\nstore = "{tmp_path}/x"\n', base_dir="/elsewhere")
     assert absolute.store_root == f"{tmp_path}/x"
     relative = parse_lab_config('[head]\nstore = "s"\n', base_dir=tmp_path)

@@ -169,3 +169,27 @@ def test_a_trial_larger_than_its_teams_cap_is_refused_at_submission(tmp_path: Pa
         head.submit("speech", text)
     assert Store(config_for(tmp_path).store_root).search("s-big").read_spec() is None  # nothing stored
     head.stop()
+
+
+def test_a_search_whose_team_left_the_config_is_held_and_the_rest_of_the_lab_runs(tmp_path: Path) -> None:
+    first = LabHead(config_for(tmp_path), InlinePool(cpus=2))
+    first.submit("speech", spec_text("s-five", trials=5))
+    first.stop()
+    text = Path(tmp_path / "lab.toml")
+    only_vision = parse_lab_config(f"""
+[head]
+store = "{tmp_path / 'store'}"
+round_seconds = 0.001
+
+[[team]]
+name = "vision"
+guarantee_cpus = 1
+tokens = ["{hash_token('rgw_v', iterations=1000)}"]
+""", str(text))
+    head = LabHead(only_vision, InlinePool(cpus=2))
+    head.submit("vision", spec_text("v-five", trials=5))
+    head.run_for(60, until=finished(head, "v-five"))
+    held = head.search("s-five")
+    assert held.state == "held" and held.reason == "team 'speech' is not in the lab config"
+    assert head.search("v-five").state == "finished" and head.loop_error is None
+    head.stop()

@@ -1,0 +1,64 @@
+"""What a segment asks the head over its link. Asking whether to yield is a blocking round trip
+to the relay actor, so the runner asks only where the answer changes the outcome: a resumable
+objective that returned short of its target budget. Runs without Ray (a recording link)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from rungway.workers.runner import SegmentOrder, run_segment
+
+
+class RecordingLink:
+    """A ``HeadLink`` that counts ``should_yield`` calls and answers ``yield_answer``."""
+
+    def __init__(self, yield_answer: bool = False) -> None:
+        self.yield_answer = yield_answer
+        self.yield_asks = 0
+        self.beats: list[tuple[int, int, float]] = []
+
+    def milestone(self, trial: int, attempt: int, rung: int, value: float) -> bool:
+        return True
+
+    def should_yield(self, trial: int, attempt: int) -> bool:
+        self.yield_asks += 1
+        return self.yield_answer
+
+    def beat(self, trial: int, attempt: int, budget: float) -> None:
+        self.beats.append((trial, attempt, budget))
+
+
+def order(root: Path, objective: str, start: int = 0, target: int = 3) -> SegmentOrder:
+    return SegmentOrder(
+        store_root=str(root), search="links", objective=objective, metric="loss", trial=0, attempt=0,
+        rung=0, start_budget=start, target_budget=target, milestones=(target,), config={"x": 0.4},
+    )
+
+
+@pytest.mark.parametrize("objective", ["objectives_run:plain", "objectives_run:noop", "objectives_run:resumable"])
+def test_a_segment_that_reaches_its_target_never_asks_whether_to_yield(tmp_path: Path, objective: str) -> None:
+    link = RecordingLink(yield_answer=True)  # even a pending request cannot change a finished segment
+    summary = run_segment(order(tmp_path, objective), link)
+    assert summary.outcome == "result", summary
+    assert summary.budget == 3
+    assert link.yield_asks == 0
+
+
+def test_a_resumable_segment_that_returns_early_after_a_yield_request_yields(tmp_path: Path, monkeypatch) -> None:
+    monkeypatch.setenv("RUNGWAY_TEST_SLEEP", "0")
+    link = RecordingLink(yield_answer=True)
+    summary = run_segment(order(tmp_path, "objectives_run:yielding_slow", target=9), link, yield_poll_seconds=3600)
+    assert summary.outcome == "yielded", summary
+    assert summary.budget == 1  # saved after the first unit, then returned
+    assert link.yield_asks == 1  # the objective's check; the runner reused its answer
+
+
+def test_a_resumable_segment_that_runs_on_without_a_yield_request_reports(tmp_path: Path, monkeypatch) -> None:
+    monkeypatch.setenv("RUNGWAY_TEST_SLEEP", "0")
+    link = RecordingLink(yield_answer=False)
+    summary = run_segment(order(tmp_path, "objectives_run:yielding_slow", target=4), link, yield_poll_seconds=3600)
+    assert summary.outcome == "result", summary
+    assert summary.budget == 4
+    assert link.yield_asks == 1  # the objective's first check; the runner itself did not need to
