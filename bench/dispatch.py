@@ -156,6 +156,7 @@ def through_rungway(count: int, objective: str, root: str) -> tuple[float, float
     per_segment = frame.groupby(["trial", "attempt"]).first()
     busy = (per_segment["ended_at"] - per_segment["started_at"]).dt.total_seconds().sum()
     slots = driver.executor.capacity()
+    driver.executor.close()  # and its relay actor, so the next repeat starts as this one did
     window = (per_segment["ended_at"].max() - per_segment["started_at"].min()).total_seconds()
     through_rungway.steady = busy / (slots * window)  # from the first segment's start to the last one's end
     return count / wall, busy / (slots * wall)

@@ -97,8 +97,6 @@ def run_search(text: str, root: str) -> dict[str, Any]:
     Returns the driver, its report, the measurements frame, ``t0`` (epoch seconds just before
     ``run()``) and the wall seconds of ``run()``.
     """
-    import ray
-
     from rungway.scheduler.head.driver import SearchDriver
     from rungway.scheduler.head.executor import RayExecutor
     from rungway.scheduler.spec import parse_spec
@@ -110,12 +108,7 @@ def run_search(text: str, root: str) -> dict[str, Any]:
     report = driver.run()
     wall = time.perf_counter() - start
     frame = driver.files.read_measurements()
-    relay = getattr(executor, "_relay", None)
-    if relay is not None:  # one relay actor per search: let it go with the search
-        try:
-            ray.kill(relay)
-        except Exception:  # noqa: BLE001 - already gone
-            pass
+    executor.close()  # one relay actor per search: let it go with the search
     return {"driver": driver, "report": report, "frame": frame, "t0": t0, "wall": wall}
 
 

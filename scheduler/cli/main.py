@@ -134,8 +134,12 @@ def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
         with ray_session(args.address, args.cpus):
             while True:
                 try:
-                    driver = SearchDriver(spec, spec_text, store_root, RayExecutor(), progress=ProgressView())
-                    report = driver.run(lambda: stop["asked"])
+                    executor = RayExecutor()
+                    driver = SearchDriver(spec, spec_text, store_root, executor, progress=ProgressView())
+                    try:
+                        report = driver.run(lambda: stop["asked"])
+                    finally:
+                        executor.close()  # its relay actor too
                 except StorageError as exc:
                     if args.retry_storage is None:
                         raise

@@ -275,11 +275,15 @@ class RayPool:
         if not ready:
             return 0
         ready, _ = self._ray.wait(refs, num_returns=len(refs), timeout=0)
-        for ref in ready:
+        try:  # one call for all of them; one by one only when some failed, to classify each
+            summaries: list[Any] | None = self._ray.get(ready)
+        except Exception:
+            summaries = None
+        for i, ref in enumerate(ready):
             search, trial, attempt = self._refs.pop(ref)
             self._by_key.pop((search, trial, attempt), None)
             try:
-                done = Completion(trial, attempt, summary=self._ray.get(ref))
+                done = Completion(trial, attempt, summary=summaries[i] if summaries is not None else self._ray.get(ref))
             except Exception as exc:  # translated right here, the one place that knows Ray
                 kind, reason = classify_ray_error(exc)
                 done = Completion(trial, attempt, lost=reason) if kind == "lost" else Completion(trial, attempt, crashed=reason)
@@ -333,7 +337,7 @@ class RayPool:
 
     def dead_nodes(self) -> set[str]:
         now = time.monotonic()
-        if now - self._dead_checked >= 0.5:  # one control-store call serves every lane
+        if now - self._dead_checked >= 2.0:  # one control-store call serves every lane
             self._dead = {n["NodeID"] for n in self._ray.nodes() if not n.get("Alive", False)}
             self._dead_checked = now
         return self._dead
@@ -349,10 +353,15 @@ class RayPool:
             self._variants.clear()
 
     def close(self) -> None:
+        """Cancel every task and stop the relay (an actor is a process of its own)."""
         for ref in list(self._refs):
             self._ray.cancel(ref, force=True)
         self._refs.clear()
         self._by_key.clear()
+        try:
+            self._ray.kill(self._relay)
+        except Exception:  # already gone with its node, or Ray is shutting down
+            pass
 
 
 class RayLane:

@@ -302,6 +302,8 @@ class LabHead:
                     self._close_driver(s)
             self._write_ledger()
             self._journal.close()
+            if self._pool is not None:
+                self._pool.close()
 
     def run_for(self, seconds: float, until: Callable[[], bool] | None = None) -> None:
         """Run the loop in this thread (tests and tools): for ``seconds`` or until ``until()``."""
