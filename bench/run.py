@@ -319,9 +319,18 @@ def render_dispatch(res: dict[str, Any], rep: Report) -> None:
     busy = from_internal(d["busy_fraction_100ms"], n)
     steady = from_internal(d["busy_fraction_100ms_steady"], n)
     rep.row("dispatch", "rungway segments/s over raw Ray tasks/s, no-op objective (same instance)", show(ratio, ".2f"),
-            "none set", None, cmd)
+            ">= 0.8 (issue #3)", ratio["median"] is not None and ratio["median"] >= 0.8, cmd)
+    rep.row("dispatch", "busy fraction, 100 ms segments, over run()", show(busy, "pct"),
+            ">= 95 % (issue #3)", busy["median"] is not None and busy["median"] >= 0.95, cmd)
     rep.row("dispatch", "busy fraction, 100 ms segments, first start to last end", show(steady, "pct"),
-            "none set (see utilization)", None, cmd)
+            ">= 95 % (issue #3)", steady["median"] is not None and steady["median"] >= 0.95, cmd)
+    cpu = d.get("cpu_ms_per_segment")
+    cpu_rows = []
+    if isinstance(cpu, dict):
+        for side, roles in cpu.items():
+            if isinstance(roles, dict):
+                cpu_rows.append([side, ", ".join(f"{role} {show(from_internal(v, n), '.3g') if isinstance(v, dict) else f'{v:.3g}'}"
+                                                 for role, v in roles.items())])
     rep.sections.append(
         f"## Dispatch overhead (`dispatch.py`)\n\n{d['cpus']} CPUs, {d['segments']} no-op segments per repeat, "
         f"each keeping every slot busy.\n\n"
@@ -332,7 +341,9 @@ def render_dispatch(res: dict[str, Any], rep: Report) -> None:
             ["ratio rungway / raw Ray", show(ratio, ".2f")],
             ["busy fraction, 100 ms sleeping segments, over run()", show(busy, "pct")],
             ["same, first segment start to last end", show(steady, "pct")],
-        ]) + "\n")
+        ]) + "\n"
+        + ("\nCPU milliseconds per segment, by process (from /proc; this run's processes only):\n\n"
+           + md_table(["side", "ms per segment by role"], cpu_rows) + "\n" if cpu_rows else ""))
 
 
 def render_utilization(res: dict[str, Any], rep: Report) -> None:
