@@ -419,9 +419,11 @@ class LabHead:
             if s.team not in teams:  # removed from the lab config since it was submitted
                 if s.state in _ACTIVE:
                     self._close_driver(s)
-                    self._set_state(s, "held", f"team {s.team!r} is not in the lab config")
+                    self._set_state(s, "held", _team_missing(s.team))
                     log.warning("search %s is held: its team %s is not in the lab config", s.name, s.team)
                 continue
+            if s.state == "held" and s.reason == _team_missing(s.team):
+                self._set_state(s, "running", None)  # its team is back in the config
             if s.driver is None and s.state in _ACTIVE:
                 # Idle searches' periodic steps are spread over the interval, not all in one turn.
                 s.last_step = now - _IDLE_STEP * ((i * 0.6180339887) % 1.0)
@@ -602,6 +604,10 @@ class LabHead:
             cpu_seconds=float(stats.get("cpu_seconds", 0.0)),
             best_value=_finite(best.get("value")), best_trial=best.get("trial"),
         )
+
+
+def _team_missing(team: str) -> str:
+    return f"team {team!r} is not in the lab config"
 
 
 def _news(driver: SearchDriver) -> bool:

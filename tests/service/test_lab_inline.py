@@ -193,3 +193,7 @@ tokens = ["{hash_token('rgw_v', iterations=1000)}"]
     assert held.state == "held" and held.reason == "team 'speech' is not in the lab config"
     assert head.search("v-five").state == "finished" and head.loop_error is None
     head.stop()
+    back = LabHead(config_for(tmp_path), InlinePool(cpus=2))  # the team is back in the config
+    back.run_for(60, until=finished(back, "s-five"))
+    assert back.search("s-five").state == "finished"
+    back.stop()
