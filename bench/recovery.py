@@ -47,6 +47,7 @@ def one_run(unit_seconds: float) -> dict[str, float]:
     from rungway.scheduler.head.driver import HealthSettings, SearchDriver
     from rungway.scheduler.head.executor import RayExecutor
     from rungway.scheduler.spec import parse_spec
+    from rungway.scheduler.testing import kill_ray_node
 
     os.environ["RUNGWAY_TEST_SLEEP"] = str(unit_seconds)
     os.environ["PYTHONPATH"] = os.pathsep.join([str(ROOT / "tests" / "run"), os.environ.get("PYTHONPATH", "")])
@@ -82,7 +83,7 @@ def one_run(unit_seconds: float) -> dict[str, float]:
                     for r in there:
                         progress_at_kill[r.trial] = r.progress
                     marks["killed"] = time.monotonic()
-                    cluster.remove_node(doomed, allow_graceful=False)
+                    kill_ray_node(cluster, doomed)  # daemons and the workers running segments
                     return
                 time.sleep(0.02)
 

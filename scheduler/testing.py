@@ -1,4 +1,5 @@
-"""In-memory stand-ins for tests and simulations: samplers with no randomness at all.
+"""Stand-ins for tests and simulations: samplers with no randomness at all, and a way to
+make a ``ray.cluster_utils`` node die as a machine does.
 
 Shipped with the package so that users testing their own adapters or plans can drive the
 core without Ray, a store or a seeded sampler.
@@ -6,12 +7,14 @@ core without Ray, a store or a seeded sampler.
 
 from __future__ import annotations
 
+import os
+import signal
 from collections.abc import Mapping, Sequence
 from typing import Any
 
 from .core.samplers.base import Config, Sampler
 
-__all__ = ["CountingSampler", "ListSampler"]
+__all__ = ["CountingSampler", "ListSampler", "kill_ray_node"]
 
 
 class CountingSampler(Sampler):
@@ -60,3 +63,33 @@ class ListSampler(Sampler):
 
     def restore(self, state: Mapping[str, Any]) -> None:
         self.position = int(state["position"])
+
+
+def _descendants(pids: set[int]) -> set[int]:
+    """Every process below ``pids`` (read from /proc)."""
+    parent: dict[int, int] = {}
+    for entry in os.listdir("/proc"):
+        if entry.isdigit():
+            try:
+                with open(f"/proc/{entry}/stat") as stat:
+                    parent[int(entry)] = int(stat.read().rsplit(")", 1)[1].split()[1])
+            except (OSError, ValueError, IndexError):
+                continue
+    found, frontier = set(), set(pids)
+    while frontier:
+        frontier = {pid for pid, ppid in parent.items() if ppid in frontier} - found
+        found |= frontier
+    return found
+
+
+def kill_ray_node(cluster: Any, node: Any) -> None:
+    """A machine dying: its Ray processes *and* the worker processes running segments go at
+    once. (Removing a ray.cluster_utils node kills only its daemons; a worker in the middle of
+    a task may live on long enough to finish it and answer, as no dead machine can.)"""
+    daemons = {process.pid for _kind, process in node.live_processes()}
+    for pid in _descendants(daemons) | daemons:
+        try:
+            os.kill(pid, signal.SIGKILL)
+        except ProcessLookupError:
+            pass
+    cluster.remove_node(node, allow_graceful=False)

@@ -337,7 +337,7 @@ class RayPool:
 
     def dead_nodes(self) -> set[str]:
         now = time.monotonic()
-        if now - self._dead_checked >= 2.0:  # one control-store call serves every lane
+        if now - self._dead_checked >= 1.0:  # one control-store call serves every lane
             self._dead = {n["NodeID"] for n in self._ray.nodes() if not n.get("Alive", False)}
             self._dead_checked = now
         return self._dead

@@ -205,9 +205,11 @@ def segments_from_measurements(frame: pd.DataFrame, *, from_scratch: bool = Fals
         raise ValueError(f"the measurements frame lacks the column(s) {', '.join(sorted(missing))}")
     rows = frame[frame["final"].astype(bool)].dropna(subset=["started_at", "ended_at"])
     if rows.empty:
-        return pd.DataFrame(columns=["trial", "attempt", "start", "target", "advance", "seconds"])
+        return pd.DataFrame(columns=["trial", "attempt", "start", "target", "advance", "seconds", "warmup"])
+    if "node" not in rows.columns:
+        rows = rows.assign(node="")
     seg = rows.groupby(["trial", "attempt"], sort=True).agg(
-        target=("budget", "max"), started=("started_at", "min"), ended=("ended_at", "max")
+        target=("budget", "max"), started=("started_at", "min"), ended=("ended_at", "max"), node=("node", "first")
     ).reset_index()
     seg["seconds"] = (seg["ended"] - seg["started"]).dt.total_seconds()
     if from_scratch:
@@ -216,8 +218,13 @@ def segments_from_measurements(frame: pd.DataFrame, *, from_scratch: bool = Fals
         # the largest target of the same trial's earlier attempts (rows are sorted by attempt)
         seg["start"] = seg.groupby("trial")["target"].transform(lambda t: t.cummax().shift(1)).fillna(0.0)
     seg["advance"] = seg["target"] - seg["start"]
+    # The first wave on each node (segments that started before any segment there ended) also
+    # paid for starting the worker processes (imports, data loading): marked, so that a fit
+    # can leave them out.
+    first_end = seg.groupby("node")["ended"].transform("min")
+    seg["warmup"] = seg["started"] < first_end
     seg = seg[(seg["advance"] > 0) & (seg["seconds"] >= 0)]
-    return seg[["trial", "attempt", "start", "target", "advance", "seconds"]].reset_index(drop=True)
+    return seg[["trial", "attempt", "start", "target", "advance", "seconds", "warmup"]].reset_index(drop=True)
 
 
 def dispatch_gap_from_measurements(frame: pd.DataFrame, *, longest: float = 1.0) -> float:
@@ -269,6 +276,10 @@ class FittedCost(CostModel):
         seg = segments_from_measurements(frame, from_scratch=from_scratch)
         if len(seg) == 0:
             raise ValueError("no completed segment with a start and end time in these measurements")
+        if (~seg["warmup"]).sum() >= max(4, len(seg) // 2):
+            # Plans are for workers that are up: the first wave's start-up cost is left out
+            # when enough segments ran after it.
+            seg = seg[~seg["warmup"]]
         x = seg["advance"].to_numpy(dtype=float)
         y = seg["seconds"].to_numpy(dtype=float)
         if len(seg) < 2 or np.ptp(x) == 0:

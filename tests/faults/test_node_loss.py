@@ -4,8 +4,6 @@ objective's value (objectives_run.value_at) and none is recorded twice."""
 
 from __future__ import annotations
 
-import os
-import signal
 import sys
 import threading
 import time
@@ -23,38 +21,9 @@ from runhelpers import _worker_path, spec_text  # noqa: E402
 from rungway.scheduler.head.driver import HealthSettings, SearchDriver  # noqa: E402
 from rungway.scheduler.head.executor import RayExecutor  # noqa: E402
 from rungway.scheduler.spec import parse_spec  # noqa: E402
+from rungway.scheduler.testing import kill_ray_node  # noqa: E402
 
 pytestmark = [pytest.mark.ray, pytest.mark.slow]
-
-
-def _descendants(pids: set[int]) -> set[int]:
-    """Every process below ``pids`` (read from /proc)."""
-    parent: dict[int, int] = {}
-    for entry in os.listdir("/proc"):
-        if entry.isdigit():
-            try:
-                with open(f"/proc/{entry}/stat") as stat:
-                    parent[int(entry)] = int(stat.read().rsplit(")", 1)[1].split()[1])
-            except (OSError, ValueError, IndexError):
-                continue
-    found, frontier = set(), set(pids)
-    while frontier:
-        frontier = {pid for pid, ppid in parent.items() if ppid in frontier} - found
-        found |= frontier
-    return found
-
-
-def kill_machine(cluster, node) -> None:  # type: ignore[no-untyped-def]
-    """A machine dying: its Ray processes *and* the worker processes running segments go at
-    once. (Removing a ray.cluster_utils node kills only its daemons; a worker in the middle of
-    a task may live on long enough to finish it and answer, as no dead machine can.)"""
-    daemons = {process.pid for _kind, process in node.live_processes()}
-    for pid in _descendants(daemons) | daemons:
-        try:
-            os.kill(pid, signal.SIGKILL)
-        except ProcessLookupError:
-            pass
-    cluster.remove_node(node, allow_graceful=False)
 
 
 def check_exact(driver: SearchDriver, trials: int) -> pd.DataFrame:
@@ -100,7 +69,7 @@ def test_removing_a_node_while_segments_run_on_it_loses_nothing(tmp_path: Path, 
                     frame = driver.files.read_measurements()
                     if not frame.empty and frame["node"].str.endswith(doomed_id[:8]).any():
                         lost_before.append(len(driver.running))
-                        kill_machine(cluster, doomed)
+                        kill_ray_node(cluster, doomed)
                         removed.set()
                         return
                 time.sleep(0.05)

@@ -64,10 +64,10 @@ def _frame(seed: int = 0, noise: float = 0.3) -> tuple[pd.DataFrame, list[tuple[
 def test_fitted_cost_recovers_slope_and_overhead():
     frame, truth = _frame()
     fitted = FittedCost.from_measurements(frame)
-    assert fitted.segments == len(truth)
+    assert fitted.segments == len(truth) - 1  # the first, the node's warm-up, is left out
     assert fitted.seconds_per_unit == pytest.approx(SLOPE, abs=0.05)
     assert fitted.overhead == pytest.approx(OVERHEAD, abs=0.3)
-    x, y = np.array(truth).T
+    x, y = np.array(truth[1:]).T
     line = stats.linregress(x, y)
     assert fitted.seconds_per_unit == pytest.approx(line.slope, rel=1e-6)
     assert fitted.overhead == pytest.approx(line.intercept, rel=1e-6)
@@ -157,3 +157,23 @@ def test_a_dispatch_gap_costs_wall_time_and_no_cpu_time():
     assert gapped.cpu_hours == pytest.approx(plain.cpu_hours) == pytest.approx(20.0 / 3600)
     with pytest.raises(ValueError, match="dispatch_gap"):
         simulate(plan, CountingSampler(), 1, FixedCost(2.0), dispatch_gap=-1.0)
+
+
+def test_the_first_wave_on_a_node_is_marked_warm_up_and_left_out_of_the_fit():
+    frame, truth = _frame()
+    seg = segments_from_measurements(frame)
+    # One node running one segment at a time: only the very first segment started before
+    # any segment there had ended.
+    assert seg["warmup"].sum() == 1
+    first = seg.loc[seg["warmup"]].iloc[0]
+    # The worker processes' start-up (say 100 s of imports) lands on that first segment: the
+    # fitted line stays that of the warm segments.
+    slow = frame.copy()
+    mine = (slow["trial"] == first["trial"]) & (slow["attempt"] == first["attempt"])
+    slow.loc[mine, "ended_at"] = slow.loc[mine, "ended_at"] + pd.Timedelta(seconds=100)
+    fitted = FittedCost.from_measurements(slow)
+    # Slowed, it now ends after the second segment began (and ended): both are the first wave.
+    assert segments_from_measurements(slow)["warmup"].sum() == 2
+    assert fitted.segments == len(truth) - 2
+    assert fitted.seconds_per_unit == pytest.approx(SLOPE, abs=0.05)
+    assert fitted.overhead == pytest.approx(OVERHEAD, abs=0.3)

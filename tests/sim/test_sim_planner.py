@@ -127,9 +127,12 @@ def test_cli_fits_the_cost_to_a_finished_search(demo_file, tmp_path, capsys):
     assert plan_cmd.run(args) == 0
     data = json.loads(capsys.readouterr().out)
     assert data["cost_is_default"] is False
-    assert data["cost"].startswith("fitted to 24 measured segments: 3 s per budget unit (epochs) + 0.5 s per segment")
+    # 24 segments; the first, which also started the worker, is left out of the fit.
+    assert data["cost"].startswith("fitted to 23 measured segments: 3 s per budget unit (epochs) + 0.5 s per segment")
     expected = plan_search(DEMO, workers=4, cost=LinearCost(3.0, 0.5), repeats=3)
-    assert data["wall_seconds"]["median"] == pytest.approx(expected.wall_seconds.median, rel=1e-6)
+    # The fitted line equals the true one to ~1e-15 s; segments of equal cost then end in
+    # an order set by those last bits, so the simulated searches differ a little.
+    assert data["wall_seconds"]["median"] == pytest.approx(expected.wall_seconds.median, rel=0.1)
 
 
 @pytest.mark.parametrize(
