@@ -28,7 +28,7 @@ import traceback
 from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import Any, Protocol
 
 from rungway.scheduler.core.errors import SpecError
 from rungway.scheduler.core.sharing import (
@@ -67,15 +67,20 @@ _PERSIST_SECONDS = 30.0
 _COMPACT_SECONDS = 60.0  # the ledger's part files are merged (once 64 or more) this often
 
 
-class PoolLike:
-    """What the head needs of its executor pool (``RayPool``, or a fake in tests)."""
+class PoolLike(Protocol):
+    """What the head needs of its executor pool (``RayPool``, ``InlinePool``, or a stand-in)."""
 
-    def lane(self, search: str) -> Executor: ...  # pragma: no cover - protocol
-    def forget(self, search: str) -> None: ...  # pragma: no cover
-    def poll(self, timeout: float) -> int: ...  # pragma: no cover
-    def capacity(self) -> float: ...  # pragma: no cover
-    def memory_mb(self) -> int: ...  # pragma: no cover
-    def close(self) -> None: ...  # pragma: no cover
+    def lane(self, search: str) -> Executor: ...
+
+    def forget(self, search: str) -> None: ...
+
+    def poll(self, timeout: float) -> int: ...
+
+    def capacity(self) -> float: ...
+
+    def memory_mb(self) -> int: ...
+
+    def close(self) -> None: ...
 
 
 @dataclass
@@ -129,7 +134,6 @@ class LabHead:
         self.loop_error: str | None = None
         self._want_drivers = True  # a search may need a driver opened (set on every state change)
         self._ledger_compacted = clock()
-        self.rounds = 0
         self.sharing = SharingState()
         self._journal = Journal(self._lab_dir() / "journal")
         self._replay()
@@ -346,7 +350,6 @@ class LabHead:
                 self._open_drivers()
             decision = self.sharing.apply(Tick(now))
             assert decision is not None
-            self.rounds += 1
             grants = {g.search: g.count for g in decision.grants}
             for p in decision.preemptions:
                 s, key = self._segment(p.segment)
@@ -529,7 +532,7 @@ class LabHead:
         quotas = self.config.quotas()
         if first:
             used = self.ledger.cpu_seconds_by_team(since=self._period_began)
-            quotas = tuple(_with_used(q, used.get(q.name, 0.0) / 3600) for q in quotas)
+            quotas = tuple(replace(q, used_cpu_hours=used.get(q.name, 0.0) / 3600) for q in quotas)
         promised = sum(q.guarantee_cpus for q in quotas)
         if promised > capacity[0] > 0:
             # A node is gone (or the cluster is smaller than the lab planned): guarantees shrink
@@ -618,10 +621,6 @@ def _news(driver: SearchDriver) -> bool:
 
 def _segment_id(search: str, trial: int, attempt: int) -> str:
     return f"{search}/{trial}/{attempt}"
-
-
-def _with_used(q: Any, used_hours: float) -> Any:
-    return replace(q, used_cpu_hours=used_hours)
 
 
 def _finite(value: Any) -> float | None:
