@@ -1,4 +1,4 @@
-"""Two teams on one real Ray instance through the lab's head: borrowing, preemption at
+"""Two teams on one real Ray cluster (two nodes) through the lab's head: borrowing, preemption at
 checkpoints, resumption, and a ledger that agrees with the measured segment times.
 
 Team alpha (guarantee 1 CPU, no cap) borrows the whole 4-CPU cluster; team beta (guarantee
@@ -46,9 +46,15 @@ def test_a_team_below_its_guarantee_gets_it_back_by_preemption(tmp_path: Path, m
 
     _worker_path()
     monkeypatch.setenv("RUNGWAY_TEST_SLEEP", "0.5")
+    from ray.cluster_utils import Cluster
+
     if ray.is_initialized():
         ray.shutdown()
-    ray.init(num_cpus=4, include_dashboard=False, logging_level="ERROR")
+    # A cluster of two 2-CPU nodes (ray.cluster_utils), the head's own and one more.
+    cluster = Cluster(initialize_head=True, head_node_args={"num_cpus": 2, "include_dashboard": False})
+    cluster.add_node(num_cpus=2)
+    ray.init(address=cluster.address, logging_level="ERROR")
+    cluster.wait_for_nodes()
     config = parse_lab_config(f"""
 [head]
 store = "{tmp_path / 'store'}"
@@ -84,6 +90,7 @@ tokens = ["{hash_token('rgw_b', iterations=1000)}"]
     finally:
         head.stop()
         ray.shutdown()
+        cluster.shutdown()
 
     ledger = Ledger(config.store_root).read()
     preempted = ledger[(ledger["search"] == "alpha-wide") & ledger["preempted"]]
@@ -98,6 +105,8 @@ tokens = ["{hash_token('rgw_b', iterations=1000)}"]
         finals = frame[frame["final"] & (frame["metric"] == "loss")]
         assert not finals.duplicated(["trial", "rung"]).any(), f"{name}: a rung result was stored twice"
         trials = finals.groupby("trial")["rung"].max()
+        if name == "alpha-wide":  # it borrowed all 4 CPUs: both nodes' slots
+            assert finals["node"].str.rsplit("/", n=1).str[1].nunique() == 2, "alpha did not run on both nodes"
         assert len(trials) == (16 if name == "alpha-wide" else 6), f"{name}: a trial has no result"
         # The ledger's CPU-seconds agree with the segment times the measurements record.
         rows = ledger[(ledger["search"] == name) & (ledger["outcome"] == "result")]
