@@ -23,6 +23,8 @@ sys.path.insert(0, str(RUN))
 from objectives_run import value_at  # noqa: E402
 from runhelpers import _worker_path, spec_text  # noqa: E402
 
+from rungway.scheduler.testing import kill_ray_node  # noqa: E402
+
 pytestmark = [pytest.mark.ray, pytest.mark.slow]
 
 RUNGWAY = [sys.executable, "-m", "rungway.scheduler.cli.main"]
@@ -63,7 +65,7 @@ def test_chaos_with_node_kills_and_a_head_kill(tmp_path: Path) -> None:
                 head_killed = True
                 head = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
             if now >= next_node_kill and len(kills) < 4:
-                cluster.remove_node(workers.pop(0), allow_graceful=False)
+                kill_ray_node(cluster, workers.pop(0))  # the machine: daemons and workers
                 kills.append(now)
                 workers.append(cluster.add_node(num_cpus=1))
                 next_node_kill = now + float(rng.uniform(3.0, 6.0))

@@ -26,6 +26,13 @@ from rungway.scheduler.testing import kill_ray_node  # noqa: E402
 pytestmark = [pytest.mark.ray, pytest.mark.slow]
 
 
+def _age(path: Path) -> float:
+    try:
+        return time.time() - path.stat().st_mtime
+    except FileNotFoundError:  # the segment just ended
+        return float("inf")
+
+
 def check_exact(driver: SearchDriver, trials: int) -> pd.DataFrame:
     frame = driver.files.read_measurements()
     finals = frame[frame["final"]]
@@ -45,6 +52,9 @@ def test_removing_a_node_while_segments_run_on_it_loses_nothing(tmp_path: Path, 
     # Long enough that the node is never idle, and that a segment running on it when it is
     # removed cannot finish before its worker process goes down with the node.
     monkeypatch.setenv("RUNGWAY_TEST_SLEEP", "0.8")
+    marks = tmp_path / "running"  # a file per segment running now, named after its node
+    marks.mkdir()
+    monkeypatch.setenv("RUNGWAY_TEST_MARKS", str(marks))  # before the nodes start: workers inherit it
     if ray.is_initialized():
         ray.shutdown()
     cluster = Cluster(initialize_head=True, head_node_args={"num_cpus": 1, "include_dashboard": False})
@@ -53,7 +63,7 @@ def test_removing_a_node_while_segments_run_on_it_loses_nothing(tmp_path: Path, 
     try:
         ray.init(address=cluster.address, logging_level="ERROR")
         cluster.wait_for_nodes()
-        text = spec_text("node-loss", objective="objectives_run:sleepy", trials=24)
+        text = spec_text("node-loss", objective="objectives_run:sleepy_marked", trials=24)
         driver = SearchDriver(parse_spec(text), text, str(tmp_path), RayExecutor(),
                               health=HealthSettings(check_every=0.5, beat_timeout=6.0))
         doomed_id = doomed.node_id
@@ -61,18 +71,18 @@ def test_removing_a_node_while_segments_run_on_it_loses_nothing(tmp_path: Path, 
         lost_before = []
 
         def remove_when_busy() -> None:
-            # Kill the 2-CPU node once it has run segments and the search is well under way:
-            # it then has segments running (4 CPUs, and the head keeps them all busy).
+            # Kill the 2-CPU node once the search is well under way and a segment is running
+            # on it right now (its objective's mark file says so).
             deadline = time.monotonic() + 240  # bounded; a loaded machine is slow to start Ray workers
             while time.monotonic() < deadline:
-                if driver.segments >= 6:
-                    frame = driver.files.read_measurements()
-                    if not frame.empty and frame["node"].str.endswith(doomed_id[:8]).any():
-                        lost_before.append(len(driver.running))
-                        kill_ray_node(cluster, doomed)
-                        removed.set()
-                        return
-                time.sleep(0.05)
+                # A mark under 0.4 s old: that segment has at least 0.4 s of its 0.8 s to go.
+                fresh = [p for p in marks.iterdir() if p.name.startswith(doomed_id) and _age(p) < 0.4]
+                if driver.segments >= 6 and fresh:
+                    lost_before.append(len(driver.running))
+                    kill_ray_node(cluster, doomed)
+                    removed.set()
+                    return
+                time.sleep(0.01)
 
         killer = threading.Thread(target=remove_when_busy, daemon=True)
         killer.start()

@@ -45,6 +45,20 @@ def sleepy(config, budget):
     return {"loss": value_at(config["x"], budget)}
 
 
+def sleepy_marked(config, budget):
+    """``sleepy`` that keeps a file named after its Ray node in ``RUNGWAY_TEST_MARKS`` while it
+    runs, so that a test can tell a segment is running on a given node right now."""
+    import ray
+
+    mark = os.path.join(os.environ["RUNGWAY_TEST_MARKS"], f"{ray.get_runtime_context().get_node_id()}-{os.getpid()}")
+    with open(mark, "w"):
+        pass
+    try:
+        return sleepy(config, budget)
+    finally:
+        os.remove(mark)
+
+
 def flaky(config, budget):
     """Raises on the first attempt of every third trial (by x), succeeds otherwise."""
     if int(config["x"] * 1000) % 3 == 0 and budget == 1:
