@@ -374,7 +374,8 @@ class SearchDriver:
         self._last_health -= self.health.check_every * phase
 
     def step(self, wait: float = 0.0, grant: int | None = None) -> None:
-        """One turn of the loop: fill, collect finished segments, write, check health.
+        """One turn of the loop: collect finished segments and store their results, start new
+        segments (all of it in one journal write), answer rung results, check health.
         Sets ``over`` when the search drained or paused on a storage fault."""
         report = self.report
         try:

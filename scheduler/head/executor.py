@@ -48,6 +48,10 @@ class Executor(Protocol):
 
     def in_flight(self) -> int: ...
 
+    def news(self) -> bool:
+        """Whether finished segments or relay posts wait to be collected."""
+        ...
+
     def drain_link(self) -> dict[str, Any]:
         """Rung results and heartbeats posted by running segments since the last call."""
         ...
@@ -136,6 +140,9 @@ class InlinePool:
 
     def poll(self, timeout: float) -> int:
         return 0
+
+    def drain_link(self) -> None:
+        return None
 
     def capacity(self) -> float:
         return self.cpus

@@ -32,6 +32,7 @@ from typing import Any, Protocol
 
 from rungway.scheduler.core.errors import SpecError
 from rungway.scheduler.core.sharing import (
+    ALLOWANCE_SPENT,
     Demand,
     Ended,
     QuotaChanged,
@@ -41,7 +42,7 @@ from rungway.scheduler.core.sharing import (
     Tick,
     Withdrawn,
 )
-from rungway.scheduler.head.driver import HealthSettings, SearchDriver
+from rungway.scheduler.head.driver import HealthSettings, RunReport, SearchDriver
 from rungway.scheduler.head.executor import Executor
 from rungway.scheduler.head.journal import Journal
 from rungway.scheduler.spec import SearchSpec, parse_spec
@@ -75,6 +76,8 @@ class PoolLike(Protocol):
     def forget(self, search: str) -> None: ...
 
     def poll(self, timeout: float) -> int: ...
+
+    def drain_link(self) -> None: ...
 
     def capacity(self) -> float: ...
 
@@ -335,9 +338,7 @@ class LabHead:
         assert pool is not None
         busy = any(s.driver is not None and s.driver.running for s in self._searches.values())
         pool.poll(self.config.head.round_seconds if busy else 0.0)
-        drain = getattr(pool, "drain_link", None)
-        if drain is not None:
-            drain()  # relay posts (heartbeats, rung results) routed to the searches' lanes
+        pool.drain_link()  # relay posts (heartbeats, rung results) routed to the searches' lanes
         if not busy:
             time.sleep(min(self.config.head.round_seconds, 0.05))
         with self._lock:
@@ -366,24 +367,23 @@ class LabHead:
             for s in list(self._searches.values()):
                 if s.state == "running" and (s.team, s.name) in held:
                     self._set_state(s, "held", held[(s.team, s.name)])
-                elif s.state == "held" and (s.team, s.name) not in held and s.reason == "allowance spent":
+                elif s.state == "held" and (s.team, s.name) not in held and s.reason == ALLOWANCE_SPENT:
                     self._set_state(s, "running", None)
+                if s.driver is None:
+                    continue
                 grant = grants.get(s.name, 0)
                 # A search with no grant, nothing finished and nothing to watch waits for the
                 # next periodic step (health, heartbeats, limits): 500 idle searches cost little.
-                if (grant or s.yielding or s.driver is None or s.demand is None or now - s.last_step >= _IDLE_STEP
-                        or _news(s.driver)):
-                    self._step(s, grant, now)
+                if (grant or s.yielding or s.demand is None or now - s.last_step >= _IDLE_STEP
+                        or s.driver.executor.news()):
+                    self._step(s, s.driver, grant, now)
                     s.last_step = now
             self._write_ledger()
             if now - self._ledger_compacted >= _COMPACT_SECONDS:
                 self._ledger_compacted = now
                 self.ledger.compact(min_parts=64)
 
-    def _step(self, s: _Search, grant: int, now: float) -> None:
-        d = s.driver
-        if d is None:
-            return
+    def _step(self, s: _Search, d: SearchDriver, grant: int, now: float) -> None:
         for key, deadline in list(s.yielding.items()):
             if key not in d.running:
                 del s.yielding[key]
@@ -394,14 +394,11 @@ class LabHead:
             grant = 0
         d.step(wait=0.0, grant=grant)
         if d.over:
-            report = d.end()
-            s.last_stats = report.statistics
-            s.driver, s.viewer = None, d
-            self._withdraw(s)
-            self._pool.forget(s.name)  # type: ignore[union-attr]
-            if report.paused_reason:
-                self._set_state(s, "faulted", report.paused_reason)
-                log.warning("search %s stopped: %s", s.name, report.paused_reason)
+            report = self._close_driver(s)
+            if report is None or report.paused_reason:
+                reason = report.paused_reason if report is not None else "its state could not be written"
+                self._set_state(s, "faulted", reason)
+                log.warning("search %s stopped: %s", s.name, reason)
             else:
                 self._set_state(s, "finished", None)
                 log.info("search %s finished (%d segments)", s.name, report.segments)
@@ -440,10 +437,14 @@ class LabHead:
                     self._set_state(s, "faulted", str(exc))
                     log.warning("search %s cannot start: %s", s.name, exc)
 
-    def _close_driver(self, s: _Search) -> None:
+    def _close_driver(self, s: _Search) -> RunReport | None:
+        """End the search's driver (running segments requeued, state written) and let go of
+        its share and lane; the driver stays as the search's read-only view. None when its
+        final state could not be written."""
         if s.driver is None:
-            return
+            return None
         d, s.driver = s.driver, None
+        report = None
         try:
             report = d.end()
             s.last_stats = report.statistics
@@ -453,6 +454,7 @@ class LabHead:
         self._withdraw(s)
         if self._pool is not None:
             self._pool.forget(s.name)
+        return report
 
     def _withdraw(self, s: _Search) -> None:
         if s.demand is not None:
@@ -611,12 +613,6 @@ class LabHead:
 
 def _team_missing(team: str) -> str:
     return f"team {team!r} is not in the lab config"
-
-
-def _news(driver: SearchDriver) -> bool:
-    """Whether the search's executor has something for it (an executor that cannot tell: yes)."""
-    news = getattr(driver.executor, "news", None)
-    return True if news is None else bool(news())
 
 
 def _segment_id(search: str, trial: int, attempt: int) -> str:
