@@ -196,6 +196,7 @@ class SearchDriver:
             covered = data.get("journal_seq", 0)
             core = SearchCore.restore(data["core"], sampler)
         self.core = core
+        self.journal.resume_after(covered)
         started = time.perf_counter()
         for entry in self.journal.entries_after(covered):
             self._replay(entry)

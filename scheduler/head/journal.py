@@ -57,6 +57,12 @@ class Journal:
                 self.seq = last
                 break
 
+    def resume_after(self, covered_seq: int) -> None:
+        """Number new entries after ``covered_seq``, the last entry a snapshot holds. Needed
+        because a rotation may have deleted every file: the numbering must not start again
+        from 1, or the next restart, replaying what follows the snapshot, would skip them."""
+        self.seq = max(self.seq, covered_seq)
+
     def files(self) -> list[Path]:
         return sorted(self.directory.glob(f"{PREFIX}*{SUFFIX}"))
 
@@ -88,7 +94,9 @@ class Journal:
     def _open_new(self) -> None:
         path = self.directory / f"{PREFIX}{self.seq + 1:012d}{SUFFIX}"
         try:
-            self._file = open(path, "ab")  # noqa: SIM115 - kept open for appends
+            # A file of this name can only hold a torn first entry of a head that died writing
+            # it (a complete one would have set ``seq`` past it): start it over.
+            self._file = open(path, "wb")  # noqa: SIM115 - kept open for appends
             if self.fsync:
                 dir_fd = os.open(self.directory, os.O_RDONLY)
                 try:
