@@ -35,8 +35,11 @@ def test_a_kill_after_a_clean_stop_and_restart_replays_exactly(tmp_path: Path) -
     second = SearchDriver(spec, text, str(tmp_path), InlineExecutor(cpus=2), persist_seconds=3600)
     second.begin()
     target = second.segments + 6
-    while second.segments < target:
+    for _ in range(10_000):  # bounded: a drained search stops counting
+        if second.segments >= target or second.over:
+            break
         second.step()
+    assert second.segments >= target, "the restarted search ended before it could be killed"
     # Killed here: no end(), no snapshot since the restart; only its journal entries remain.
     numbers = [entry["n"] for entry in Journal(journal_dir).entries_after(0)]
     assert numbers and min(numbers) == covered + 1, "the restarted head numbered its entries from 1 again"
