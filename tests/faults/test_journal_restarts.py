@@ -24,7 +24,7 @@ from rungway.scheduler.spec import parse_spec  # noqa: E402
 
 
 def test_a_kill_after_a_clean_stop_and_restart_replays_exactly(tmp_path: Path) -> None:
-    text = spec_text("again", trials=15, max_budget=9)
+    text = spec_text("again", trials=30, max_budget=9)
     spec = parse_spec(text)
     first = SearchDriver(spec, text, str(tmp_path), InlineExecutor(cpus=2))
     first.run(lambda: first.segments >= 8)  # a clean stop: snapshot, then the journal is rotated away
@@ -34,7 +34,7 @@ def test_a_kill_after_a_clean_stop_and_restart_replays_exactly(tmp_path: Path) -
 
     second = SearchDriver(spec, text, str(tmp_path), InlineExecutor(cpus=2), persist_seconds=3600)
     second.begin()
-    target = second.segments + 6
+    target = second.segments + 3
     for _ in range(10_000):  # bounded: a drained search stops counting
         if second.segments >= target or second.over:
             break
@@ -53,7 +53,7 @@ def test_a_kill_after_a_clean_stop_and_restart_replays_exactly(tmp_path: Path) -
     finals = frame[frame["final"]]
     assert not finals.duplicated(["trial", "rung", "metric"]).any()
     table = third.files.read_trials().set_index("trial")
-    assert len(table) == 15
+    assert len(table) == 30
     for row in finals.itertuples():
         assert row.value == pytest.approx(value_at(table.loc[row.trial, "param_x"], int(row.budget)), abs=1e-12)
 
