@@ -124,7 +124,7 @@ SPEC = """
 name = "{name}"
 objective = "dispatch_objectives:{objective}"
 metric = "loss"
-direction = "minimize"
+better = "lower"
 [ladder]
 min = 1
 max = 1

@@ -26,7 +26,7 @@ SPEC = """
 name = "replay"
 objective = "rungway.workers.demo:train_boosting"
 metric = "loss"
-direction = "minimize"
+better = "lower"
 [ladder]
 min = 1
 max = 81

@@ -97,7 +97,7 @@ SPEC = """
 name = "{name}"
 objective = "bench_objectives:never_called"
 metric = "loss"
-direction = "minimize"
+better = "lower"
 seed = {seed}
 [ladder]
 min = 1

@@ -69,7 +69,7 @@ SPEC = """
 name = "{name}"
 objective = "{objective}"
 metric = "accuracy"
-direction = "maximize"
+better = "higher"
 seed = {seed}
 [ladder]
 unit = "{unit}"

@@ -26,7 +26,7 @@ SPEC = """
 name = "recovery"
 objective = "objectives_run:slow_resumable"
 metric = "loss"
-direction = "minimize"
+better = "lower"
 [ladder]
 min = 3
 max = 27

@@ -68,7 +68,7 @@ SLEEPY_SPEC = """
 name = "sleepy-linear"
 objective = "sim_accuracy:linear_sleep"
 metric = "loss"
-direction = "minimize"
+better = "lower"
 seed = 5
 [ladder]
 min = 1

@@ -156,7 +156,7 @@ REAL_SPEC = """
 name = "{name}"
 objective = "utilization:sleepy"
 metric = "loss"
-direction = "minimize"
+better = "lower"
 seed = {seed}
 [ladder]
 min = 1

@@ -6,7 +6,7 @@ limits, the resources each trial needs and the search space (see ``docs/spec-fil
     name = "digits-mlp"
     objective = "rungway.workers.demo:train_mlp"
     metric = "accuracy"
-    direction = "maximize"
+    better = "higher"
 
     [ladder]
     unit = "epochs"
@@ -55,12 +55,13 @@ from pydantic import (
 from rungway.workers.objective import check_objective_path, load_objective
 
 from .core.errors import SpecError
+from .store.migrations import renamed
 from .core.plan import MODES, SearchPlan
 from .core.samplers import SAMPLERS, Sampler, make_sampler
 from .core.space import SearchSpace
 
 __all__ = [
-    "DIRECTIONS",
+    "BETTER_CHOICES",
     "NAME_PATTERN",
     "LadderSection",
     "LimitsSection",
@@ -79,7 +80,8 @@ __all__ = [
 NAME_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$"
 """Search names: a letter or digit, then up to 63 letters, digits, ``.``, ``_`` or ``-``."""
 
-DIRECTIONS: tuple[str, ...] = ("maximize", "minimize")
+BETTER_CHOICES: tuple[str, ...] = ("higher", "lower")
+"""The values of ``better``: which end of the metric is the good one."""
 HYPERBAND_COUNTS: tuple[str, ...] = ("formula", "table")
 
 _NAME_RE = re.compile(NAME_PATTERN)
@@ -490,7 +492,7 @@ class SearchSpec(BaseModel):
     name: Name
     objective: Annotated[str, PlainValidator(_check_objective)]
     metric: Annotated[str, PlainValidator(_check_metric)]
-    direction: Annotated[str, _one_of(DIRECTIONS)]
+    better: Annotated[str, _one_of(BETTER_CHOICES)]
     seed: Annotated[int, _int_at_least(0)] = 0
     ladder: LadderSection
     sampler: SamplerSection = SamplerSection()
@@ -539,7 +541,7 @@ class SearchSpec(BaseModel):
 
     @property
     def maximize(self) -> bool:
-        return self.direction == "maximize"
+        return self.better == "higher"
 
     @property
     def deadline_seconds(self) -> float | None:
@@ -616,8 +618,8 @@ _MISSING_HINTS = {
     ("name",): 'give the search a name, e.g. name = "digits-mlp"',
     ("objective",): 'name the function to tune, e.g. objective = "mypackage.train:run"',
     ("metric",): 'name the metric the objective returns, e.g. metric = "accuracy"',
-    ("direction",): (
-        'say whether higher or lower is better: direction = "maximize" or "minimize"'
+    ("better",): (
+        'say whether higher or lower values of the metric are better: better = "higher" or "lower"'
     ),
     ("ladder",): "add a [ladder] table with at least min and max (the smallest and largest budget)",
     ("ladder", "min"): "give the smallest budget a trial runs for, e.g. min = 1",
@@ -656,6 +658,8 @@ def _pydantic_problems(exc: ValidationError) -> list[tuple[tuple[str, ...], str]
         elif kind == "missing":
             hint = _MISSING_HINTS.get(loc)
             out.append((loc, "required field is missing" + (f"; {hint}" if hint else "")))
+        elif kind == "extra_forbidden" and len(loc) == 1 and renamed(loc[0]) is not None:
+            out.append((loc, f"this key was renamed in rungway 0.2: write {renamed(loc[0])}"))
         elif kind == "extra_forbidden":
             model = _SECTIONS.get(loc[:-1])
             valid = _field_names(model) if model else []

@@ -8,7 +8,18 @@ Objectives come in two forms, both named by a ``module:function`` path in the se
   ``ctx.state``, reports and saves as it goes (see :class:`Context`).
 """
 
-from .context import Context, TrialStopped
+from .context import Context, TrialCulled
 from .objective import Objective, interpret_result, load_objective
 
-__all__ = ["Context", "Objective", "TrialStopped", "interpret_result", "load_objective"]
+__all__ = ["Context", "Objective", "TrialCulled", "interpret_result", "load_objective"]
+
+
+def __getattr__(name: str) -> object:
+    # A name rungway 0.2 replaced gets its new name (ImportError, so that ``from rungway.workers
+    # import <old name>`` shows this message instead of Python's generic one).
+    from rungway.scheduler.store.migrations import renamed
+
+    new = renamed(name)
+    if new is not None:
+        raise ImportError(f"rungway.workers.{name} was renamed in rungway 0.2: use {new}")
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -9,7 +9,7 @@ A resumable objective is a function of one argument::
             fit_one_epoch(model)
             ctx.report(epoch + 1, accuracy=score(model))
             ctx.save(model, epoch + 1)
-            if ctx.should_yield:
+            if ctx.asked_to_yield:
                 return            # saved above; rungway resumes it later
         return {"accuracy": score(model)}
 
@@ -24,7 +24,7 @@ import math
 from collections.abc import Callable, Mapping
 from typing import Any
 
-__all__ = ["Context", "TrialStopped"]
+__all__ = ["Context", "TrialCulled"]
 
 Budget = int | float
 
@@ -75,7 +75,7 @@ class Context:
 
         Values must be numbers; NaN and infinities are kept and ranked worst. Reaching a rung's
         budget makes this the rung's result. In ASHA's stopping form the head may then stop
-        the trial: ``report`` raises :class:`TrialStopped` (caught by the runner) in that case.
+        the trial: ``report`` raises :class:`TrialCulled` (caught by the runner) in that case.
         """
         if not metrics:
             raise TypeError("report() needs at least one metric, e.g. ctx.report(3, accuracy=0.9)")
@@ -93,7 +93,7 @@ class Context:
             self._milestone_index += 1
             at_milestone = True
         if not self._report(budget, clean, at_milestone):
-            raise TrialStopped(f"the scheduler stopped trial {self.trial} at budget {budget}")
+            raise TrialCulled(f"the scheduler stopped trial {self.trial} at budget {budget}")
 
     def save(self, state: Any, budget: Budget, /) -> None:
         """Save ``state`` (any picklable object) as this trial's checkpoint at ``budget``.
@@ -107,11 +107,20 @@ class Context:
         self.saved_budget = budget
 
     @property
-    def should_yield(self) -> bool:
+    def asked_to_yield(self) -> bool:
         """True when the scheduler asks this segment to save and return early (preemption)."""
         return self._yield_flag()
 
+    def __getattr__(self, name: str) -> Any:
+        # Only reached for a name the class lacks: answer a name rungway 0.2 replaced with its new one.
+        from rungway.scheduler.store.migrations import renamed
 
-class TrialStopped(Exception):
+        new = renamed(name)
+        if new is not None:
+            raise AttributeError(f"ctx.{name} was renamed in rungway 0.2: use ctx.{new}")
+        raise AttributeError(f"{type(self).__name__!r} object has no attribute {name!r}")
+
+
+class TrialCulled(Exception):
     """The scheduler stopped the trial at a rung (stopping form); the runner catches it."""
 

@@ -92,7 +92,7 @@ DEMO_SPEC = """\
 name = "digits-mlp"
 objective = "rungway.workers.demo:train_mlp"
 metric = "accuracy"
-direction = "maximize"
+better = "higher"
 seed = 20
 
 [ladder]
@@ -153,7 +153,7 @@ BOOSTING_SPEC = """\
 name = "cancer-boosting"
 objective = "rungway.workers.demo:train_boosting"
 metric = "accuracy"
-direction = "maximize"
+better = "higher"
 seed = 30
 
 [ladder]
@@ -374,7 +374,7 @@ def train_mlp(ctx) -> dict[str, float] | None:
             scores = _scores(model.predict_proba(X_val), model.classes_, y_val)
             ctx.report(epoch, **scores)
             ctx.save(model, epoch)
-            if epoch < target and ctx.should_yield:
+            if epoch < target and ctx.asked_to_yield:
                 return None
         if scores is None:  # restored at (or past) the budget already
             scores = _scores(model.predict_proba(X_val), model.classes_, y_val)

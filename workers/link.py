@@ -44,7 +44,7 @@ class Relay:
             budget = previous[0]
         self._beats[key] = (budget, node)
 
-    def should_yield(self, search: str, trial: int, attempt: int) -> bool:
+    def asked_to_yield(self, search: str, trial: int, attempt: int) -> bool:
         return (search, trial, attempt) in self._yields
 
     # ---- head side ----
@@ -129,8 +129,8 @@ class ActorLink:
             time.sleep(delay)
             delay = min(delay * 1.5, 0.5)
 
-    def should_yield(self, trial: int, attempt: int) -> bool:
-        return bool(ray.get(self._relay.should_yield.remote(self._search, trial, attempt)))
+    def asked_to_yield(self, trial: int, attempt: int) -> bool:
+        return bool(ray.get(self._relay.asked_to_yield.remote(self._search, trial, attempt)))
 
     def beat(self, trial: int, attempt: int, budget: Budget) -> None:
         now = time.monotonic()

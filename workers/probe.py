@@ -16,7 +16,7 @@ from typing import Any
 
 from rungway.scheduler.core.errors import SpecError
 
-from .context import Context, TrialStopped
+from .context import Context, TrialCulled
 from .objective import NOT_FINITE, Objective, interpret_result
 
 __all__ = ["probe_objective"]
@@ -39,7 +39,7 @@ def probe_objective(objective: Objective, config: Mapping[str, Any], budget: int
     where = f"{objective.path} on {dict(config)} at budget {budget}"
     try:
         returned = objective.fn(dict(config), budget) if objective.form == "plain" else objective.fn(ctx)
-    except TrialStopped:
+    except TrialCulled:
         returned = None
     except Exception as exc:
         tail = "".join(traceback.format_exception_only(type(exc), exc)).strip()

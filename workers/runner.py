@@ -27,7 +27,7 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Any, Literal, Protocol
 
-from .context import Context, TrialStopped
+from .context import Context, TrialCulled
 from .objective import NOT_FINITE, Objective, interpret_result, load_objective
 
 __all__ = ["SegmentOrder", "SegmentSummary", "HeadLink", "run_segment", "node_name"]
@@ -88,7 +88,7 @@ class HeadLink(Protocol):
         """A rung result in the stopping form; True to run on, False to stop."""
         ...
 
-    def should_yield(self, trial: int, attempt: int) -> bool: ...
+    def asked_to_yield(self, trial: int, attempt: int) -> bool: ...
 
     def beat(self, trial: int, attempt: int, budget: Budget) -> None: ...
 
@@ -191,7 +191,7 @@ def run_segment(
             return False
         now = clock()
         if now - last_poll[0] >= yield_poll_seconds:
-            last_poll[0], last_poll[1] = now, link.should_yield(order.trial, order.attempt)
+            last_poll[0], last_poll[1] = now, link.asked_to_yield(order.trial, order.attempt)
         return bool(last_poll[1])
 
     ctx = Context(
@@ -204,7 +204,7 @@ def run_segment(
             returned = objective.fn(dict(order.config), order.target_budget)
         else:
             returned = objective.fn(ctx)
-    except TrialStopped:
+    except TrialCulled:
         summary.outcome = "stopped"
         returned = _STOPPED
     except StorageError as exc:
@@ -218,7 +218,7 @@ def run_segment(
     summary.cpu_seconds = time.process_time() - cpu_start
     if returned is _STOPPED:
         summary.budget = ctx.measurements[-1][0] if ctx.measurements else start
-    elif objective.form == "resumable" and _short_of_target(ctx, order) and ctx.should_yield:
+    elif objective.form == "resumable" and _short_of_target(ctx, order) and ctx.asked_to_yield:
         # Asked only when it could matter: the flag may cost a round trip to the head.
         summary.outcome = "yielded"
         summary.budget = ctx.saved_budget if ctx.saved_budget is not None else start

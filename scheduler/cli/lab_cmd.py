@@ -140,9 +140,9 @@ def _num(value: float | None, digits: int = 2) -> str | None:
 
 
 def _best(search: dict[str, Any]) -> str | None:
-    if search.get("best_value") is None:
+    if search.get("leader_value") is None:
         return None
-    return f"{search['best_value']:.6g} (trial {search.get('best_trial')})"
+    return f"{search['leader_value']:.6g} (trial {search.get('leader')})"
 
 
 def _state(search: dict[str, Any]) -> str:
@@ -160,7 +160,7 @@ def _show_list(searches: list[dict[str, Any]]) -> None:
 
 def _show_one(search: dict[str, Any]) -> None:
     print(f"{search['name']} ({search['team']}): {_state(search)}, priority {search['priority']}")
-    print(f"  {search['metric']} ({search['direction']}); best {_best(search) or 'none yet'}")
+    print(f"  {search['metric']} ({search['better']} is better); best {_best(search) or 'none yet'}")
     print(f"  {search['trials']} trials, {search['segments']} segments ({search['running_segments']} running), "
           f"{search['cpus_busy']:g} CPUs busy, {_num(search['cpu_seconds'] / 3600)} CPU-hours")
     board = search.get("leaderboard") or []

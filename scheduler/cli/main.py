@@ -250,13 +250,13 @@ def _load_search(store_root: str, name: str):  # type: ignore[no-untyped-def]
     from rungway.scheduler.core.search import SearchCore
     from rungway.scheduler.head.driver import HEAD_STATE
     from rungway.scheduler.spec import parse_spec
-    from rungway.scheduler.store import Store
+    from rungway.scheduler.store import open_store
 
-    files = Store(_absolute_root(store_root)).search(name)
+    files = open_store(_absolute_root(store_root)).search(name)
     text = files.read_spec()
     state = files.read_head_state(HEAD_STATE)
     if text is None or state is None:
-        known = ", ".join(Store(_absolute_root(store_root)).list_searches()) or "none"
+        known = ", ".join(files.store.list_searches()) or "none"
         raise SpecError(f"no search named {name!r} in {store_root} (searches there: {known})", field="name")
     spec = parse_spec(text, f"{name}/spec.toml")
     data = json.loads(state)
@@ -273,12 +273,12 @@ def cmd_show(args: argparse.Namespace) -> int:
         for t in core.leaderboard(args.top)
     ]
     if args.json:
-        print(json.dumps({"search": spec.name, "metric": spec.metric, "direction": spec.direction,
+        print(json.dumps({"search": spec.name, "metric": spec.metric, "better": spec.better,
                           "statistics": stats, "leaderboard": board, "meta": meta}, indent=2, default=_plain))
         return 0
     states = stats["states"]
     print(f"search {spec.name}: {stats['trials']} trials ({', '.join(f'{k} {v}' for k, v in states.items() if v)})")
-    print(f"metric {spec.metric} ({spec.direction}); {spec.ladder.unit} from {spec.ladder.min} to {spec.ladder.max}, eta {spec.ladder.eta}, mode {spec.ladder.mode}")
+    print(f"metric {spec.metric} ({spec.better} is better); {spec.ladder.unit} from {spec.ladder.min} to {spec.ladder.max}, eta {spec.ladder.eta}, mode {spec.ladder.mode}")
     for index, bracket in enumerate(stats["brackets"]):
         label = f"bracket {index}: " if len(stats["brackets"]) > 1 else ""
         print("  " + label + " | ".join(f"{r['budget']:g}: {r['results']} results, {r['promoted']} promoted" for r in bracket["rungs"]))
@@ -290,9 +290,9 @@ def cmd_show(args: argparse.Namespace) -> int:
 
 
 def cmd_list(args: argparse.Namespace) -> int:
-    from rungway.scheduler.store import Store
+    from rungway.scheduler.store import open_store
 
-    names = Store(_absolute_root(args.store)).list_searches()
+    names = open_store(_absolute_root(args.store)).list_searches()
     if args.json:
         print(json.dumps(names))
     else:
@@ -301,9 +301,9 @@ def cmd_list(args: argparse.Namespace) -> int:
 
 
 def cmd_export(args: argparse.Namespace) -> int:
-    from rungway.scheduler.store import Store
+    from rungway.scheduler.store import open_store
 
-    files = Store(_absolute_root(args.store)).search(args.name)
+    files = open_store(_absolute_root(args.store)).search(args.name)
     if files.read_spec() is None:
         raise SpecError(f"no search named {args.name!r} in {args.store}", field="name")
     frame = {"trials": files.read_trials, "measurements": files.read_measurements, "failures": files.read_failures}[args.what]()

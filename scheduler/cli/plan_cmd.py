@@ -102,16 +102,16 @@ def _run(args: argparse.Namespace) -> int:
             raise SpecError("give either --from-search or --seconds-per-unit, not both", field="--seconds-per-unit")
         if not getattr(args, "store", None):
             raise SpecError("--from-search needs --store, the store root that holds the search", field="--store")
-        from rungway.scheduler.store import Store
+        from rungway.scheduler.store import open_store
 
         root = args.store
         if "://" not in root:
             from pathlib import Path
 
             root = str(Path(root).resolve())
-        files = Store(root).search(args.from_search)
+        files = open_store(root).search(args.from_search)
         if files.read_spec() is None:
-            known = ", ".join(Store(root).list_searches()) or "none"
+            known = ", ".join(files.store.list_searches()) or "none"
             raise SpecError(f"no search named {args.from_search!r} in {args.store} (searches there: {known})",
                             field="--from-search")
         fitted_from = files.read_measurements()

@@ -26,7 +26,7 @@ def render(stats: dict[str, Any]) -> list[str]:
     lines = [
         f"{stats['search']}: {stats['trials']} trials, {states['active']} running, {states['done']} at the top, "
         f"{states['failed']} failed | {stats['cpus_busy']:g}/{stats['cpus_total']:g} CPUs busy",
-        f"  best {stats['metric']} ({stats['direction']}): {best_text}",
+        f"  best {stats['metric']} ({stats['better']} is better): {best_text}",
     ]
     for index, bracket in enumerate(stats["brackets"]):
         prefix = f"  bracket {index} " if len(stats["brackets"]) > 1 else "  "

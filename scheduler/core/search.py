@@ -84,7 +84,7 @@ class _Trial:
     """The core's record of one trial. ``rung`` is the rung worked towards while queued or
     active, and the last rung with a result otherwise; ``saved`` is the budget reached."""
 
-    __slots__ = ("id", "bracket", "state", "rung", "attempt", "saved", "loss", "crashes", "config")
+    __slots__ = ("id", "bracket", "state", "rung", "attempt", "saved", "loss", "record", "crashes", "config")
 
     def __init__(self, tid: int, bracket: int, config: dict[str, Any]) -> None:
         self.id = tid
@@ -93,7 +93,8 @@ class _Trial:
         self.rung = 0
         self.attempt = 0
         self.saved: Budget = 0
-        self.loss: float | None = None
+        self.loss: float | None = None  # the latest result
+        self.record: float | None = None  # the best result at any rung
         self.crashes = 0
         self.config = config
 
@@ -131,11 +132,12 @@ class _Bracket:
 class TrialView:
     """A read-only look at one trial (for adapters, the CLI and tests)."""
 
-    __slots__ = ("id", "bracket", "state", "rung", "attempt", "budget", "loss", "crashes", "config")
+    __slots__ = ("id", "bracket", "state", "rung", "attempt", "budget", "loss", "record", "crashes", "config")
 
     def __init__(self, t: _Trial) -> None:
         self.id, self.bracket, self.state, self.rung = t.id, t.bracket, t.state, t.rung
         self.attempt, self.budget, self.loss, self.crashes = t.attempt, t.saved, t.loss, t.crashes
+        self.record = t.record
         self.config = dict(t.config)
 
     def __repr__(self) -> str:
@@ -323,6 +325,8 @@ class SearchCore:
         bracket = self._brackets[trial.bracket]
         board = bracket.boards[rung]
         trial.loss = loss
+        if trial.record is None or loss < trial.record:
+            trial.record = loss
         trial.saved = bracket.budgets[rung]
         observe = self._observe
         if observe is not None:
@@ -549,6 +553,7 @@ class SearchCore:
                 "attempt": [x.attempt for x in t],
                 "saved": [x.saved for x in t],
                 "loss": [x.loss for x in t],
+                "record": [x.record for x in t],
                 "crashes": [x.crashes for x in t],
                 "config": [x.config for x in t],
             },
@@ -588,6 +593,7 @@ class SearchCore:
             trial.attempt = cols["attempt"][tid]
             trial.saved = cols["saved"][tid]
             trial.loss = cols["loss"][tid]
+            trial.record = cols["record"][tid] if "record" in cols else trial.loss
             trial.crashes = cols["crashes"][tid]
             core._trials.append(trial)
         for bracket, data in zip(core._brackets, snapshot["brackets"], strict=True):
@@ -600,6 +606,12 @@ class SearchCore:
             bracket.level = data["level"]
             bracket.created = data["created"]
             bracket.outstanding = data["outstanding"]
+            if "record" not in cols:  # an older snapshot: every result is on a rung board
+                for board in bracket.boards:
+                    for loss, tid in board.results():
+                        trial = core._trials[tid]
+                        if trial.record is None or loss < trial.record:
+                            trial.record = loss
         core._queue.extend(snapshot["queue"])
         core._active = snapshot["active"]
         core._admitting = snapshot["admitting"]

@@ -121,12 +121,12 @@ class SearchDriver:
         health: HealthSettings = HealthSettings(),
         listener: SegmentListener | None = None,
     ) -> None:
-        from rungway.scheduler.store import Store
+        from rungway.scheduler.store import open_store
 
         self.spec = spec
         self.spec_text = spec_text
         self.store_root = store_root
-        self.files = Store(store_root).search(spec.name)
+        self.files = open_store(store_root, create=True).search(spec.name)
         self.executor = executor
         self.progress = progress
         self.clock = clock
@@ -332,7 +332,8 @@ class SearchDriver:
                     "status": t.state,
                     "rung": t.rung,
                     "budget_reached": float(t.budget),
-                    "best_value": math.nan if t.loss is None else self.core.value_of(t.loss),
+                    "latest_value": math.nan if t.loss is None else self.core.value_of(t.loss),
+                    "record_value": math.nan if t.record is None else self.core.value_of(t.record),
                     "attempts": t.attempt,
                     "failures": t.crashes,
                     "params": t.config,
@@ -751,7 +752,7 @@ class SearchDriver:
             {
                 "search": self.spec.name,
                 "metric": self.spec.metric,
-                "direction": self.spec.direction,
+                "better": self.spec.better,
                 "unit": self.spec.ladder.unit,
                 "elapsed": elapsed,
                 "eta_seconds": eta_seconds,

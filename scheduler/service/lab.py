@@ -46,7 +46,7 @@ from rungway.scheduler.head.driver import HealthSettings, RunReport, SearchDrive
 from rungway.scheduler.head.executor import Executor
 from rungway.scheduler.head.journal import Journal
 from rungway.scheduler.spec import SearchSpec, parse_spec
-from rungway.scheduler.store import StorageError, Store
+from rungway.scheduler.store import StorageError, open_store
 from rungway.scheduler.store.layout import validate_search_name
 from rungway.workers.runner import SegmentSummary
 
@@ -120,7 +120,7 @@ class LabHead:
     ) -> None:
         self.config = config
         self.store_root = config.store_root
-        self.store = Store(self.store_root)
+        self.store = open_store(self.store_root, create=True)
         self.ledger = Ledger(self.store_root)
         self.clock = clock
         self.wall = wall
@@ -603,11 +603,11 @@ class LabHead:
         running = len(s.driver.running) if s.driver is not None else 0
         return SearchInfo(
             name=s.name, team=s.team, priority=s.priority, state=s.state, reason=s.reason,  # type: ignore[arg-type]
-            submitted_at=s.submitted_at, metric=s.spec.metric, direction=s.spec.direction,
+            submitted_at=s.submitted_at, metric=s.spec.metric, better=s.spec.better,
             trials=int(stats.get("trials", 0)), segments=int(stats.get("segments", 0)),
             running_segments=running, cpus_busy=running * float(s.spec.resources.cpus),
             cpu_seconds=float(stats.get("cpu_seconds", 0.0)),
-            best_value=_finite(best.get("value")), best_trial=best.get("trial"),
+            leader_value=_finite(best.get("value")), leader=best.get("trial"),
         )
 
 

@@ -45,14 +45,14 @@ class SearchInfo(_Model):
     reason: str | None = None
     submitted_at: float = Field(..., description="Unix time")
     metric: str
-    direction: Literal["minimize", "maximize"]
+    better: Literal["higher", "lower"]
     trials: int = 0
     segments: int = 0
     running_segments: int = 0
     cpus_busy: float = 0.0
     cpu_seconds: float = 0.0
-    best_value: float | None = None
-    best_trial: int | None = None
+    leader: int | None = None
+    leader_value: float | None = None
 
 
 class SearchDetail(SearchInfo):

@@ -84,7 +84,7 @@ class SimResult:
     time_to_target: float | None
     """First simulated time a result at a bracket's top rung was at least as good as
     ``target`` (None when no target was given or none reached it)."""
-    best_value: float | None
+    leader_value: float | None
     events: int
     statistics: dict[str, Any] = field(repr=False, default_factory=dict)
     """``core.statistics()`` at the end."""
@@ -358,7 +358,7 @@ def simulate(
         budgets=tuple(tuple(r["budget"] for r in b["rungs"]) for b in stats["brackets"]),
         drained=drained,
         time_to_target=tt,
-        best_value=None if best is None else best["value"],
+        leader_value=None if best is None else best["value"],
         events=events,
         statistics=stats,
         core=core,

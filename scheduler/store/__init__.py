@@ -18,14 +18,17 @@ from .schemas import (
     FAILURES_SCHEMA,
     MEASUREMENT_KEY,
     MEASUREMENTS_SCHEMA,
-    PARAM_PREFIX,
+    SPACE_PREFIX,
     TRIALS_BASE_SCHEMA,
     trials_schema,
 )
+from .migrations import STORE_FORMAT, open_store
 from .search import SearchFiles, Store
 
 __all__ = [
     "Store",
+    "open_store",
+    "STORE_FORMAT",
     "SearchFiles",
     "CheckpointInfo",
     "LoadedCheckpoint",
@@ -33,7 +36,7 @@ __all__ = [
     "MEASUREMENT_KEY",
     "TRIALS_BASE_SCHEMA",
     "FAILURES_SCHEMA",
-    "PARAM_PREFIX",
+    "SPACE_PREFIX",
     "trials_schema",
     "StorageError",
     "StorageFull",

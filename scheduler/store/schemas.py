@@ -25,7 +25,7 @@ __all__ = [
     "MEASUREMENTS_SCHEMA",
     "MEASUREMENT_KEY",
     "TRIALS_BASE_SCHEMA",
-    "PARAM_PREFIX",
+    "SPACE_PREFIX",
     "FAILURES_SCHEMA",
     "trials_schema",
     "rows_to_table",
@@ -59,13 +59,14 @@ TRIALS_BASE_SCHEMA = pa.schema(
         pa.field("status", pa.string(), nullable=False),
         pa.field("rung", pa.int32(), nullable=False),
         pa.field("budget_reached", pa.float64()),
-        pa.field("best_value", pa.float64()),
+        pa.field("latest_value", pa.float64()),
+        pa.field("record_value", pa.float64()),
         pa.field("attempts", pa.int32(), nullable=False),
         pa.field("failures", pa.int32(), nullable=False),
     ]
 )
 
-PARAM_PREFIX = "param_"
+SPACE_PREFIX = "space_"
 
 FAILURES_SCHEMA = pa.schema(
     [
@@ -81,10 +82,10 @@ FAILURES_SCHEMA = pa.schema(
 )
 
 
-def trials_schema(param_types: Mapping[str, pa.DataType]) -> pa.Schema:
+def trials_schema(parameter_types: Mapping[str, pa.DataType]) -> pa.Schema:
     """The trials table's schema for parameters of the given Arrow types, in that order."""
     fields = list(TRIALS_BASE_SCHEMA)
-    fields += [pa.field(PARAM_PREFIX + name, kind) for name, kind in param_types.items()]
+    fields += [pa.field(SPACE_PREFIX + name, kind) for name, kind in parameter_types.items()]
     return pa.schema(fields)
 
 
@@ -187,7 +188,7 @@ def rows_to_table(rows: Sequence[Mapping[str, Any]], schema: pa.Schema) -> pa.Ta
     return pa.Table.from_arrays(arrays, schema=schema)
 
 
-def _param_array(name: str, values: list[Any]) -> pa.Array:
+def _parameter_array(name: str, values: list[Any]) -> pa.Array:
     """Infer one parameter column's type; mixed types fall back to their text form."""
     try:
         # from_pandas: NaN means "absent" here, as it does in the frame read_trials returns.
@@ -197,19 +198,19 @@ def _param_array(name: str, values: list[Any]) -> pa.Array:
         return pa.array(text, type=pa.string())
 
 
-def trials_to_table(rows: Sequence[Mapping[str, Any]], param_names: Sequence[str]) -> pa.Table:
+def trials_to_table(rows: Sequence[Mapping[str, Any]], parameter_names: Sequence[str]) -> pa.Table:
     """Check trial rows and build the trials table.
 
     A row gives its configuration either as ``params`` (a mapping of name to value) or as
-    ``param_<name>`` keys (the shape :func:`read_trials` returns). Parameters a row lacks
+    ``space_<name>`` keys (the shape :func:`read_trials` returns). Parameters a row lacks
     (conditional ones) become null. Each parameter column's type is inferred from its
     values: all-null columns have Arrow's null type; values of mixed, incompatible types
     (say 3 and "auto") are stored as their ``str()``.
     """
     _check_mappings(rows)
-    if isinstance(param_names, str):
-        raise InvalidRows("param_names must be a sequence of names, not one string")
-    names = list(param_names)
+    if isinstance(parameter_names, str):
+        raise InvalidRows("parameter_names must be a sequence of names, not one string")
+    names = list(parameter_names)
     for name in names:
         if not isinstance(name, str) or not name:
             raise InvalidRows(f"parameter names must be non-empty strings, got {name!r}")
@@ -217,7 +218,7 @@ def trials_to_table(rows: Sequence[Mapping[str, Any]], param_names: Sequence[str
         raise InvalidRows(f"parameter names repeat: {names}")
     allowed = set(names)
     base = set(TRIALS_BASE_SCHEMA.names)
-    params_per_row: list[dict[str, Any]] = []
+    parameters_per_row: list[dict[str, Any]] = []
     for index, row in enumerate(rows):
         params: dict[str, Any] = {}
         nested = row.get("params")
@@ -228,20 +229,20 @@ def trials_to_table(rows: Sequence[Mapping[str, Any]], param_names: Sequence[str
         for key, value in row.items():
             if key == "params" or key in base:
                 continue
-            if isinstance(key, str) and key.startswith(PARAM_PREFIX):
-                params[key[len(PARAM_PREFIX):]] = value
+            if isinstance(key, str) and key.startswith(SPACE_PREFIX):
+                params[key[len(SPACE_PREFIX):]] = value
             else:
                 raise InvalidRows(
                     f"row {index}: unknown column (the columns are {', '.join(TRIALS_BASE_SCHEMA.names)}, "
-                    f"params or param_<name>)",
+                    f"params or space_<name>)",
                     column=str(key),
                 )
         stray = sorted(set(params) - allowed, key=str)
         if stray:
-            raise InvalidRows(f"row {index}: parameter {stray[0]!r} is not in param_names {names}",
-                              column=PARAM_PREFIX + str(stray[0]))
-        params_per_row.append(params)
+            raise InvalidRows(f"row {index}: parameter {stray[0]!r} is not in parameter_names {names}",
+                              column=SPACE_PREFIX + str(stray[0]))
+        parameters_per_row.append(params)
     arrays = [_column(rows, field) for field in TRIALS_BASE_SCHEMA]
-    param_arrays = [_param_array(name, [params.get(name) for params in params_per_row]) for name in names]
-    schema = trials_schema({name: array.type for name, array in zip(names, param_arrays)})
-    return pa.Table.from_arrays(arrays + param_arrays, schema=schema)
+    parameter_arrays = [_parameter_array(name, [params.get(name) for params in parameters_per_row]) for name in names]
+    schema = trials_schema({name: array.type for name, array in zip(names, parameter_arrays)})
+    return pa.Table.from_arrays(arrays + parameter_arrays, schema=schema)

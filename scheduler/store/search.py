@@ -132,9 +132,9 @@ class SearchFiles:
 
     # -- trials ---------------------------------------------------------------------------
 
-    def write_trials(self, rows: Sequence[Mapping[str, Any]], param_names: Sequence[str]) -> None:
+    def write_trials(self, rows: Sequence[Mapping[str, Any]], parameter_names: Sequence[str]) -> None:
         """Replace the trials table (one row per trial) atomically."""
-        tables.write_trials(self._volume, self.layout, rows, param_names)
+        tables.write_trials(self._volume, self.layout, rows, parameter_names)
 
     def read_trials(self) -> pd.DataFrame:
         """The trials table, or an empty frame with the base columns before the first write."""

@@ -28,7 +28,7 @@ from .schemas import (
     FAILURES_SCHEMA,
     MEASUREMENT_KEY,
     MEASUREMENTS_SCHEMA,
-    PARAM_PREFIX,
+    SPACE_PREFIX,
     TRIALS_BASE_SCHEMA,
     rows_to_table,
     trials_to_table,
@@ -210,10 +210,10 @@ def compact_measurements(volume: Volume, layout: SearchLayout, min_parts: int = 
 
 
 def write_trials(
-    volume: Volume, layout: SearchLayout, rows: Sequence[Mapping[str, Any]], param_names: Sequence[str]
+    volume: Volume, layout: SearchLayout, rows: Sequence[Mapping[str, Any]], parameter_names: Sequence[str]
 ) -> None:
     """Replace the trials table with ``rows`` (one per trial) in one atomic write."""
-    table = trials_to_table(rows, param_names)
+    table = trials_to_table(rows, parameter_names)
     trials = table.column("trial").to_pylist()
     if len(set(trials)) != len(trials):
         raise InvalidRows("each trial appears once in the trials table", column="trial")
@@ -227,7 +227,7 @@ def read_trials(volume: Volume, layout: SearchLayout) -> pd.DataFrame:
         return TRIALS_BASE_SCHEMA.empty_table().to_pandas()
     head = pa.schema(list(table.schema)[: len(TRIALS_BASE_SCHEMA)])
     if not head.equals(TRIALS_BASE_SCHEMA) or not all(
-        name.startswith(PARAM_PREFIX) for name in table.schema.names[len(TRIALS_BASE_SCHEMA):]
+        name.startswith(SPACE_PREFIX) for name in table.schema.names[len(TRIALS_BASE_SCHEMA):]
     ):
         raise StorageCorrupt(
             f"{layout.trials} does not have the trials columns (found {table.schema.names}); "

@@ -247,7 +247,7 @@ def resolve(path: str):
 def test_the_specs_parse_and_name_what_their_objective_reads(text, function, defaults, unit, budgets) -> None:
     spec = tomllib.loads(text)
     assert resolve(spec["objective"]) is function
-    assert (spec["metric"], spec["direction"]) == ("accuracy", "maximize")
+    assert (spec["metric"], spec["better"]) == ("accuracy", "higher")
     assert spec["ladder"]["unit"] == unit and spec["ladder"]["mode"] == "asha"
     assert spec["sampler"]["kind"] == "random" and spec["resources"]["cpus"] == 1
     plan = SearchPlan(

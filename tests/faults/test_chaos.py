@@ -85,7 +85,7 @@ def test_chaos_with_node_kills_and_a_head_kill(tmp_path: Path) -> None:
     assert set(table.index) == set(range(TRIALS))
     assert not finals.duplicated(["trial", "rung", "metric"]).any(), "a rung result was recorded twice"
     for row in finals.itertuples():
-        assert row.value == pytest.approx(value_at(table.loc[row.trial, "param_x"], int(row.budget)), abs=1e-12)
+        assert row.value == pytest.approx(value_at(table.loc[row.trial, "space_x"], int(row.budget)), abs=1e-12)
     per_rung = finals.groupby("rung")["trial"].apply(set)
     for k in range(1, int(per_rung.index.max()) + 1):
         assert per_rung[k] <= per_rung[k - 1], f"a trial reached rung {k} without a result at rung {k - 1}"

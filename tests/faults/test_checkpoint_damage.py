@@ -53,7 +53,7 @@ def test_damaged_checkpoints_fall_back_and_results_stay_exact(tmp_path: Path, ca
     finals = frame[frame["final"]]
     trials = second.files.read_trials().set_index("trial")
     for row in finals.itertuples():
-        assert row.value == pytest.approx(value_at(trials.loc[row.trial, "param_x"], int(row.budget)), abs=1e-12)
+        assert row.value == pytest.approx(value_at(trials.loc[row.trial, "space_x"], int(row.budget)), abs=1e-12)
     assert not finals.duplicated(["trial", "rung", "metric"]).any()
     assert damaged >= 2
 

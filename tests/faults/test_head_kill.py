@@ -83,10 +83,10 @@ def test_head_killed_at_random_moments_resumes_with_nothing_lost_or_doubled(clus
     assert not finals.duplicated(["trial", "rung", "metric"]).any(), "a rung result was recorded twice"
     assert set(table.index) == set(range(trials))
     for row in finals.itertuples():
-        assert row.value == pytest.approx(value_at(table.loc[row.trial, "param_x"], int(row.budget)), abs=1e-12)
+        assert row.value == pytest.approx(value_at(table.loc[row.trial, "space_x"], int(row.budget)), abs=1e-12)
     # Every trial's recorded best is the objective's value at the budget it reached.
     for tid, row in table.iterrows():
-        assert row["best_value"] == pytest.approx(value_at(row["param_x"], int(row["budget_reached"])), abs=1e-12)
+        assert row["latest_value"] == pytest.approx(value_at(row["space_x"], int(row["budget_reached"])), abs=1e-12)
     # Every trial has a result at every rung up to the one it reached (none skipped or lost).
     rungs = finals.groupby("trial")["rung"].apply(sorted)
     for tid, row in table.iterrows():
@@ -95,6 +95,6 @@ def test_head_killed_at_random_moments_resumes_with_nothing_lost_or_doubled(clus
     shown = subprocess.run([*RUNGWAY, "show", "kill", "--json", "--store", str(store), "--top", "5"],
                            capture_output=True, text=True, timeout=120, env=head_env())
     board = json.loads(shown.stdout)["leaderboard"]
-    implied = table.assign(v=[value_at(x, int(b)) for x, b in zip(table["param_x"], table["budget_reached"], strict=True)])
+    implied = table.assign(v=[value_at(x, int(b)) for x, b in zip(table["space_x"], table["budget_reached"], strict=True)])
     implied = implied.sort_values(["rung", "v"], ascending=[False, True], kind="stable")
     assert [row["trial"] for row in board] == list(implied.index[:5])

@@ -55,7 +55,7 @@ def test_a_kill_after_a_clean_stop_and_restart_replays_exactly(tmp_path: Path) -
     table = third.files.read_trials().set_index("trial")
     assert len(table) == 30
     for row in finals.itertuples():
-        assert row.value == pytest.approx(value_at(table.loc[row.trial, "param_x"], int(row.budget)), abs=1e-12)
+        assert row.value == pytest.approx(value_at(table.loc[row.trial, "space_x"], int(row.budget)), abs=1e-12)
 
 
 def test_a_file_left_with_only_a_torn_first_entry_is_started_over(tmp_path: Path) -> None:

@@ -40,7 +40,7 @@ def check_exact(driver: SearchDriver, trials: int) -> pd.DataFrame:
     table = driver.files.read_trials().set_index("trial")
     assert len(table) == trials
     for row in finals.itertuples():
-        assert row.value == pytest.approx(value_at(table.loc[row.trial, "param_x"], int(row.budget)), abs=1e-12)
+        assert row.value == pytest.approx(value_at(table.loc[row.trial, "space_x"], int(row.budget)), abs=1e-12)
     return finals
 
 

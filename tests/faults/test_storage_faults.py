@@ -59,7 +59,7 @@ def check_exact(store: Path, name: str, trials: int) -> None:
     table = pd.read_parquet(store / "searches" / name / "trials.parquet").set_index("trial")
     assert set(table.index) == set(range(trials))
     for row in finals.itertuples():
-        assert row.value == pytest.approx(value_at(table.loc[row.trial, "param_x"], int(row.budget)), abs=1e-12)
+        assert row.value == pytest.approx(value_at(table.loc[row.trial, "space_x"], int(row.budget)), abs=1e-12)
 
 
 def test_a_full_disk_pauses_the_search_and_it_resumes_when_space_is_freed(small_disk: Path, tmp_path: Path) -> None:

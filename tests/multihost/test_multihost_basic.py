@@ -37,7 +37,7 @@ def test_a_search_started_with_run_search_sh_runs_on_all_three_hosts(lab_cluster
     finals = frame[frame["final"]]
     assert (finals["rung"] > 0).any()  # promotions happened
     for row in finals.itertuples():
-        x = trials.loc[row.trial, "param_x"]
+        x = trials.loc[row.trial, "space_x"]
         assert row.value == pytest.approx(value_at(x, int(row.budget)), abs=1e-12), row
 
 

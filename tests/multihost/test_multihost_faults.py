@@ -37,7 +37,7 @@ def check_search(lab, name: str, trials: int) -> None:
     finals = frame[frame["final"]]
     assert not finals.duplicated(["trial", "rung", "metric"]).any(), "a rung result was recorded twice"
     for row in finals.itertuples():
-        assert row.value == pytest.approx(value_at(table.loc[row.trial, "param_x"], int(row.budget)), abs=1e-12)
+        assert row.value == pytest.approx(value_at(table.loc[row.trial, "space_x"], int(row.budget)), abs=1e-12)
     rungs = finals.groupby("trial")["rung"].apply(sorted)
     for tid, row in table.iterrows():
         assert rungs[tid] == list(range(int(row["rung"]) + 1)), f"trial {tid} is missing a rung result"

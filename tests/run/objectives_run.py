@@ -94,7 +94,7 @@ def slow_resumable(ctx, honour_yield: bool = False):
         state = {"value": math.sin(state["value"] * 1.7 + step) + 0.01 * step, "step": step + 1}
         ctx.save(state, step + 1)
         ctx.report(step + 1, loss=(x - 0.3) ** 2 + state["value"] / (step + 2))
-        if honour_yield and ctx.should_yield:
+        if honour_yield and ctx.asked_to_yield:
             return None
     return {"loss": (x - 0.3) ** 2 + state["value"] / (ctx.budget + 1)}
 

@@ -20,7 +20,7 @@ def spec_text(name: str, objective: str = "objectives_run:resumable", *, mode: s
 name = "{name}"
 objective = "{objective}"
 metric = "loss"
-direction = "minimize"
+better = "lower"
 seed = {seed}
 
 [ladder]

@@ -90,5 +90,5 @@ def test_ctrl_c_stops_cleanly_and_the_same_command_resumes(tmp_path: Path) -> No
     assert not finals.duplicated(["trial", "rung", "metric"]).any(), "a rung result was recorded twice"
     trials = pd.read_parquet(trials_file).set_index("trial")
     for row in finals.itertuples():
-        assert row.value == pytest.approx(value_at(trials.loc[row.trial, "param_x"], int(row.budget)), abs=1e-12)
+        assert row.value == pytest.approx(value_at(trials.loc[row.trial, "space_x"], int(row.budget)), abs=1e-12)
     assert set(trials.index) == set(range(30))

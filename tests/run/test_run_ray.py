@@ -36,7 +36,7 @@ def test_resumed_segments_equal_one_uninterrupted_run(local_ray, tmp_path) -> No
     promoted = finals[finals["rung"] > 0]
     assert not promoted.empty
     for row in finals.itertuples():
-        x = trials.loc[row.trial, "param_x"]
+        x = trials.loc[row.trial, "space_x"]
         assert row.value == pytest.approx(value_at(x, int(row.budget)), abs=1e-12), row
     # every trial that reached rung k was resumed from its checkpoint at rung k-1's budget
     assert set(promoted["attempt"]) != {1}
@@ -50,7 +50,7 @@ def test_parquet_outputs_match_the_documented_schema(local_ray, tmp_path) -> Non
     for path in files:
         assert pq.read_schema(path).remove_metadata().equals(MEASUREMENTS_SCHEMA.remove_metadata()), path
     trials = pq.read_table(tmp_path / "searches" / "schema" / "trials.parquet")
-    for column in ("trial", "status", "rung", "budget_reached", "best_value", "attempts", "failures", "param_x"):
+    for column in ("trial", "status", "rung", "budget_reached", "latest_value", "record_value", "attempts", "failures", "space_x"):
         assert column in trials.column_names
     assert trials.num_rows == 12
     # every measurement has exactly one row per key
@@ -80,5 +80,5 @@ def test_segments_run_on_every_node_of_a_three_node_cluster(three_node_cluster, 
     finals = frame[frame["final"]]
     trials = driver.files.read_trials().set_index("trial")
     for row in finals.itertuples():
-        assert row.value == pytest.approx(value_at(trials.loc[row.trial, "param_x"], int(row.budget)), abs=1e-12)
+        assert row.value == pytest.approx(value_at(trials.loc[row.trial, "space_x"], int(row.budget)), abs=1e-12)
     assert not math.isnan(driver.statistics()["best"]["value"])

@@ -12,7 +12,7 @@ from rungway.workers.runner import SegmentOrder, run_segment
 
 
 class RecordingLink:
-    """A ``HeadLink`` that counts ``should_yield`` calls and answers ``yield_answer``."""
+    """A ``HeadLink`` that counts ``asked_to_yield`` calls and answers ``yield_answer``."""
 
     def __init__(self, yield_answer: bool = False) -> None:
         self.yield_answer = yield_answer
@@ -22,7 +22,7 @@ class RecordingLink:
     def milestone(self, trial: int, attempt: int, rung: int, value: float) -> bool:
         return True
 
-    def should_yield(self, trial: int, attempt: int) -> bool:
+    def asked_to_yield(self, trial: int, attempt: int) -> bool:
         self.yield_asks += 1
         return self.yield_answer
 

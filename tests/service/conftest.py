@@ -115,7 +115,7 @@ class FakeHead:
             if spec.name in self._searches:
                 raise NameTaken(f"a search named {spec.name!r} already exists")
             info = SearchInfo(name=spec.name, team=team, priority=priority, state="running",
-                              submitted_at=time.time(), metric=spec.metric, direction=spec.direction)  # type: ignore[arg-type]
+                              submitted_at=time.time(), metric=spec.metric, better=spec.better)  # type: ignore[arg-type]
             self._searches[spec.name] = info
             return info
 
@@ -198,7 +198,7 @@ def spec_text(name: str, *, metric: str = "loss") -> str:
 name = "{name}"
 objective = "objectives_for_tests:quadratic"
 metric = "{metric}"
-direction = "minimize"
+better = "lower"
 
 [ladder]
 min = 1

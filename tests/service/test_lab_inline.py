@@ -71,7 +71,7 @@ def test_two_teams_share_the_loop_and_every_segment_is_charged(tmp_path: Path) -
     for name, team in (("v-one", "vision"), ("s-one", "speech")):
         info = head.search(name)
         assert info.state == "finished" and info.team == team
-        assert info.best_value is not None and info.trials == 9
+        assert info.leader_value is not None and info.trials == 9
         rungs = [r["results"] for r in info.rungs]
         assert rungs == [9, 3, 1]  # eta = 3 over budgets 1, 3, 9 (successive halving counts)
         exactly_once(tmp_path, name)
@@ -116,7 +116,7 @@ def test_a_restarted_head_finishes_every_search_and_keeps_usage(tmp_path: Path) 
     for name in ("v-two", "s-two"):
         info = second.search(name)
         assert info.state == "finished" and info.trials == 12
-        assert info.leaderboard and info.leaderboard[0]["value"] == info.best_value
+        assert info.leaderboard and info.leaderboard[0]["value"] == info.leader_value
         exactly_once(tmp_path, name)
     used_after = {t.team: t.used_cpu_hours for t in second.usage(period="all").teams}
     assert used_after["vision"] >= used_before["vision"]

@@ -86,7 +86,7 @@ def test_time_scale_invariance():
     b = simulate(plan, CountingSampler(), 8, HeavyTailCost(20.0, sigma=0.7, overhead=4.0), seed=4)
     assert b.wall_seconds == pytest.approx(2 * a.wall_seconds, rel=1e-9)
     assert a.trials_per_rung == b.trials_per_rung
-    assert a.best_value == b.best_value
+    assert a.leader_value == b.leader_value
 
 
 def test_runs_are_deterministic_given_the_seed():
@@ -105,4 +105,4 @@ def test_time_to_target():
     # the first top-rung result: no earlier than one trial's full ladder, 27 units
     assert easy.time_to_target >= 27.0
     assert none.time_to_target is None
-    assert easy.best_value is not None and easy.best_value > 0
+    assert easy.leader_value is not None and easy.leader_value > 0

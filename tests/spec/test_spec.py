@@ -40,7 +40,7 @@ FULL = """\
 name = "digits-mlp"
 objective = "objectives_for_tests:resumable"
 metric = "accuracy"
-direction = "maximize"
+better = "higher"
 seed = 7
 
 [ladder]
@@ -83,7 +83,7 @@ MINIMAL = """\
 name = "tiny"
 objective = "objectives_for_tests:plain"
 metric = "loss"
-direction = "minimize"
+better = "lower"
 
 [ladder]
 min = 1

@@ -60,7 +60,7 @@ def test_parquet_writer_failing_midway_keeps_the_previous_trials_table(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     files = Store(str(tmp_path)).search("s")
-    row = dict(trial=0, status="done", rung=0, budget_reached=1.0, best_value=0.1, attempts=1, failures=0)
+    row = dict(trial=0, status="done", rung=0, budget_reached=1.0, latest_value=0.1, record_value=0.1, attempts=1, failures=0)
     files.write_trials([row], [])
 
     def half_write(table: pa.Table, out: Any, **_: Any) -> None:

@@ -32,7 +32,7 @@ def files(tmp_path: Path) -> SearchFiles:
     files.compact_measurements(min_parts=2)  # one block ...
     files.write_measurements(segment(10))  # ... plus one part
     files.write_trials(
-        [dict(trial=t, status="done", rung=0, budget_reached=1.0, best_value=float(t), attempts=1, failures=0,
+        [dict(trial=t, status="done", rung=0, budget_reached=1.0, latest_value=float(t), record_value=float(t), attempts=1, failures=0,
               params={"lr": 0.1 * (t + 1)}) for t in (0, 1, 2, 3, 10)],
         ["lr"],
     )
@@ -44,7 +44,7 @@ def test_pandas_reads_the_measurements_folder(files: SearchFiles) -> None:
     assert len(frame) == 15
     assert sorted(frame["trial"].unique()) == [0, 1, 2, 3, 10]
     trials = pd.read_parquet(f"{files.path}/trials.parquet")
-    assert trials.set_index("trial").loc[10, "param_lr"] == pytest.approx(1.1)
+    assert trials.set_index("trial").loc[10, "space_lr"] == pytest.approx(1.1)
 
 
 def test_pyarrow_dataset_reads_with_the_schema(files: SearchFiles) -> None:
@@ -67,10 +67,10 @@ def test_duckdb_reads_the_glob(files: SearchFiles) -> None:
     assert final == [(0, 2.0), (1, 3.0), (2, 4.0), (3, 5.0), (10, 12.0)]
     joined = con.execute(
         f"""
-        SELECT t.param_lr, min(m.value) AS best
+        SELECT t.space_lr, min(m.value) AS best
         FROM read_parquet('{files.path}/measurements/*.parquet') m
         JOIN read_parquet('{files.path}/trials.parquet') t USING (trial)
-        GROUP BY t.param_lr ORDER BY best
+        GROUP BY t.space_lr ORDER BY best
         """
     ).fetchall()
     assert len(joined) == 5 and joined[0][1] == 0.0

@@ -38,7 +38,7 @@ def test_whole_lifecycle_on_a_non_local_file_system() -> None:
     assert files.read_measurements()["trial"].tolist() == [0, 1, 2]
     loaded = files.load_checkpoint(0)
     assert loaded is not None and loaded.data == b"two"
-    assert files.read_trials()["param_lr"].tolist() == [0.1]
+    assert files.read_trials()["space_lr"].tolist() == [0.1]
     assert len(files.read_failures()) == 1
     assert not any(".tmp-" in path for path in all_files(store))
 

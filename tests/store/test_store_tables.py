@@ -151,18 +151,18 @@ def test_a_damaged_part_is_reported_as_corrupt_with_its_path(files: SearchFiles)
 
 def trial_row(trial: int, **extra: Any) -> dict[str, Any]:
     row: dict[str, Any] = dict(
-        trial=trial, status="running", rung=0, budget_reached=1.0, best_value=0.25, attempts=1, failures=0
+        trial=trial, status="running", rung=0, budget_reached=1.0, latest_value=0.25, record_value=0.2, attempts=1, failures=0
     )
     row.update(extra)
     return row
 
 
-def test_trials_round_trip_with_inferred_param_types(files: SearchFiles) -> None:
+def test_trials_round_trip_with_inferred_parameter_types(files: SearchFiles) -> None:
     rows = [
         trial_row(0, params={"lr": 0.1, "depth": 3, "kernel": "rbf", "gamma": 0.5, "shrink": True}),
-        trial_row(1, status="stopped", best_value=None, params={"lr": 0.01, "depth": 5, "kernel": "linear",
+        trial_row(1, status="stopped", latest_value=None, record_value=None, params={"lr": 0.01, "depth": 5, "kernel": "linear",
                                                                "shrink": False}),
-        trial_row(2, param_lr=1e-3, param_depth=7, param_kernel="rbf", param_gamma=2.0),
+        trial_row(2, space_lr=1e-3, space_depth=7, space_kernel="rbf", space_gamma=2.0),
     ]
     names = ["lr", "depth", "kernel", "gamma", "shrink", "never"]
     files.write_trials(rows, names)
@@ -177,10 +177,10 @@ def test_trials_round_trip_with_inferred_param_types(files: SearchFiles) -> None
     assert pa.Table.from_pandas(frame, schema=expected, preserve_index=False).schema.equals(expected)
     assert frame["trial"].tolist() == [0, 1, 2]
     assert frame["status"].tolist() == ["running", "stopped", "running"]
-    assert pd.isna(frame.loc[1, "best_value"])
-    assert pd.isna(frame.loc[1, "param_gamma"])  # conditional parameter absent -> null
-    assert frame["param_depth"].tolist() == [3, 5, 7]
-    assert frame.loc[2, "param_lr"] == pytest.approx(1e-3)
+    assert pd.isna(frame.loc[1, "latest_value"])
+    assert pd.isna(frame.loc[1, "space_gamma"])  # conditional parameter absent -> null
+    assert frame["space_depth"].tolist() == [3, 5, 7]
+    assert frame.loc[2, "space_lr"] == pytest.approx(1e-3)
 
 
 def test_trials_frame_written_back_gives_the_same_table(files: SearchFiles) -> None:
@@ -191,10 +191,10 @@ def test_trials_frame_written_back_gives_the_same_table(files: SearchFiles) -> N
     assert pq.read_table(files.layout.trials).equals(first)
 
 
-def test_trials_with_mixed_type_param_fall_back_to_text(files: SearchFiles) -> None:
+def test_trials_with_mixed_type_space_fall_back_to_text(files: SearchFiles) -> None:
     files.write_trials([trial_row(0, params={"c": 3}), trial_row(1, params={"c": "auto"})], ["c"])
     frame = files.read_trials()
-    assert frame["param_c"].tolist() == ["3", "auto"]
+    assert frame["space_c"].tolist() == ["3", "auto"]
 
 
 def test_trials_replace_the_whole_table(files: SearchFiles) -> None:
@@ -211,7 +211,7 @@ def test_read_trials_before_any_write_has_the_base_columns(files: SearchFiles) -
 @pytest.mark.parametrize(
     ("row", "names", "column"),
     [
-        (trial_row(0, params={"unlisted": 1}), ["lr"], "param_unlisted"),
+        (trial_row(0, params={"unlisted": 1}), ["lr"], "space_unlisted"),
         (trial_row(0, colour="red"), [], "colour"),
         (trial_row(0, attempts=None), [], "attempts"),
         (trial_row(0, status=3), [], "status"),
