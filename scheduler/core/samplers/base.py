@@ -34,7 +34,7 @@ class Sampler(ABC):
     def observe(self, trial: int, config: Mapping[str, Any], rung: int, loss: float) -> None:
         """A result was recorded for ``trial`` at ``rung``.
 
-        ``loss`` is already normalised by the search's direction: lower is better, and any
+        ``loss`` is already normalised so that lower is better whatever the search's ``better``, and any
         non-finite measurement arrives as ``math.inf``. The default ignores results.
         """
 
