@@ -132,3 +132,32 @@ def test_show_reads_a_format_one_store(format_one: Path, capsys: pytest.CaptureF
     assert main(["show", SEARCH, "--store", str(format_one), "--json"]) == 0
     shown = json.loads(capsys.readouterr().out)
     assert shown["better"] == "lower"
+
+
+# -- an old name gets its new one -------------------------------------------------------------
+
+
+def test_a_spec_with_the_old_key_gets_an_error_naming_the_new_key() -> None:
+    from rungway.scheduler.spec import SpecFileError
+
+    text = (FIXTURES / "format-1.toml").read_text()
+    assert 'direction = "minimize"' in text
+    with pytest.raises(SpecFileError) as caught:
+        parse_spec(text, source="old.toml")
+    message = str(caught.value)
+    assert 'old.toml:4: direction: this key was renamed in rungway 0.2: write better' in message
+    assert 'better = "lower"' in message
+
+
+def test_an_objective_using_an_old_name_is_told_the_new_one() -> None:
+    from rungway.workers import Context
+
+    ctx = Context(config={}, budget=1, start=0, state=None, trial=0, attempt=1, rung=0, milestones=(1,),
+                  save=lambda state, budget: None, report=lambda budget, metrics, at: True,
+                  yield_flag=lambda: False)
+    with pytest.raises(AttributeError, match=r"ctx\.should_yield was renamed in rungway 0\.2: use ctx\.asked_to_yield"):
+        ctx.should_yield  # noqa: B018
+    with pytest.raises(AttributeError, match="no attribute 'no_such_thing'"):
+        ctx.no_such_thing  # noqa: B018
+    with pytest.raises(ImportError, match="rungway.workers.TrialStopped was renamed in rungway 0.2: use TrialCulled"):
+        from rungway.workers import TrialStopped  # noqa: F401
