@@ -62,6 +62,7 @@ from .core.space import SearchSpace
 
 __all__ = [
     "BETTER_CHOICES",
+    "decode_spec",
     "NAME_PATTERN",
     "LadderSection",
     "LimitsSection",
@@ -380,6 +381,20 @@ def _check_objective(value: Any) -> str:
 
 Name = Annotated[str, PlainValidator(_check_name)]
 PositiveNumber = Annotated[int | float, PlainValidator(_positive_number)]
+
+
+def _cpu_count(value: Any) -> int | float:
+    # Ray takes a share of one CPU down to 1e-4 and whole CPUs above one; a share below a
+    # hundredth is never what was meant.
+    value = _positive_number(value)
+    if value < 0.01:
+        raise SpecError(f"must be at least 0.01 (a hundredth of a CPU) (got {_show(value)})")
+    if value > 1 and value != int(value):
+        raise SpecError(f"must be a whole number of CPUs when above 1 (got {_show(value)}); e.g. {math.ceil(value)}")
+    return value
+
+
+CpuCount = Annotated[int | float, PlainValidator(_cpu_count)]
 Duration = Annotated[float, PlainValidator(parse_duration)]
 
 
@@ -458,7 +473,7 @@ class ResourcesSection(BaseModel):
 
     model_config = _SECTION
 
-    cpus: PositiveNumber = 1
+    cpus: CpuCount = 1
     memory_mb: Annotated[int, _int_at_least(0)] = 0
 
 
@@ -710,8 +725,12 @@ _TOML_AT_RE = re.compile(r"\s*\(at line (\d+), column (\d+)\)\s*$")
 
 def parse_spec(text: str, source: str = "<spec>") -> SearchSpec:
     """A :class:`SearchSpec` from TOML ``text``; ``source`` names it in error messages."""
+    text = text.removeprefix("\ufeff")  # a byte-order mark some editors write: harmless
     try:
         data = tomllib.loads(text)
+    except RecursionError:
+        raise SpecFileError([Problem(None, "values are nested too deeply to read; a spec needs at most a few levels")],
+                            source=source) from None
     except tomllib.TOMLDecodeError as exc:
         message = str(exc)
         line = getattr(exc, "lineno", None)
@@ -722,9 +741,27 @@ def parse_spec(text: str, source: str = "<spec>") -> SearchSpec:
         elif message.endswith("(at end of document)"):
             message = message[: -len("(at end of document)")].rstrip() + " at the end of the file"
             line = line or max(1, len(text.splitlines()))
+        if text.lstrip().startswith("{"):
+            message += "; this looks like JSON, but a spec file is TOML (docs/spec-files.md shows one)"
         problem = Problem(None, f"not valid TOML: {message}", line)
         raise SpecFileError([problem], source=source) from None
-    return spec_from_mapping(data, source=source, text=text)
+    try:
+        return spec_from_mapping(data, source=source, text=text)
+    except RecursionError:
+        raise SpecFileError([Problem(None, "values are nested too deeply to check; a spec needs at most a few levels")],
+                            source=source) from None
+
+
+def decode_spec(raw: bytes, source: str) -> str:
+    """A spec file's bytes as text; anything but UTF-8 is a located :class:`SpecFileError`."""
+    try:
+        return raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = raw[: exc.start].count(b"\n") + 1
+        raise SpecFileError(
+            [Problem(None, f"not UTF-8 text (byte {exc.start}); save the file as UTF-8, as TOML requires", line)],
+            source=source,
+        ) from None
 
 
 def load_spec(path: str | PathLike[str]) -> SearchSpec:
@@ -737,14 +774,7 @@ def load_spec(path: str | PathLike[str]) -> SearchSpec:
         raise SpecFileError(
             [Problem(None, f"cannot read the spec file: {exc.strerror or exc}")], source=source
         ) from None
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        line = raw[: exc.start].count(b"\n") + 1
-        raise SpecFileError(
-            [Problem(None, "not UTF-8 text; TOML files must be UTF-8", line)], source=source
-        ) from None
-    return parse_spec(text, source)
+    return parse_spec(decode_spec(raw, source), source)
 
 
 # --------------------------------------------------------------------------------------------

@@ -19,6 +19,8 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
+from rungway.scheduler.core.errors import SpecError
+
 __all__ = ["add_parsers", "run_head", "run_lab"]
 
 EXIT_USER_ERROR = 2
@@ -84,6 +86,9 @@ def run_lab(args: argparse.Namespace) -> int:
     except OSError as exc:  # the spec file
         print(f"error: cannot read the spec file {args.spec}: {exc.strerror}", file=sys.stderr)
         return EXIT_USER_ERROR
+    except SpecError as exc:  # the spec file is not text
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_USER_ERROR
     if args.json:
         print(json.dumps(answer, indent=2))
     else:
@@ -91,10 +96,16 @@ def run_lab(args: argparse.Namespace) -> int:
     return 0
 
 
+def _spec_text(path: str) -> str:
+    from rungway.scheduler.spec import decode_spec
+
+    return decode_spec(Path(path).read_bytes(), path)
+
+
 def _ask(client: Any, args: argparse.Namespace) -> Any:
     action = args.action
     if action == "submit":
-        return client.submit(Path(args.spec).read_text(), priority=args.priority, team=args.team)
+        return client.submit(_spec_text(args.spec), priority=args.priority, team=args.team)
     if action == "list":
         return client.searches(team=args.team)
     if action == "show":

@@ -225,12 +225,14 @@ def _print_summary(summary: dict[str, Any], metric: str) -> None:
 
 
 def cmd_run(args: argparse.Namespace) -> int:
+    from rungway.scheduler.spec import decode_spec
+
     path = Path(args.spec)
     try:
-        text = path.read_text()
+        raw = path.read_bytes()
     except OSError as exc:
         raise SpecError(f"cannot read the spec file: {exc.strerror}", field=str(path)) from None
-    return _run_spec(text, str(path), args)
+    return _run_spec(decode_spec(raw, str(path)), str(path), args)
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
