@@ -87,6 +87,11 @@ def main(argv: list[str] | None = None) -> int:
     logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
     try:
         return COMMANDS[args.command](args)
+    except BrokenPipeError:
+        # The reader went away (``rungway show --json | head``): not an error of ours. Point
+        # stdout at nothing so that the interpreter's final flush does not fail again.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     except RungwayError as exc:
         if isinstance(exc, SpecError):
             print(f"error: {exc}", file=sys.stderr)
@@ -106,8 +111,13 @@ def main(argv: list[str] | None = None) -> int:
 def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
     from rungway.scheduler.spec import check_spec, parse_spec
 
+    if args.address is None and os.getcwd() not in sys.path:
+        # The embedded Ray's workers import from the working directory (head/cluster.py);
+        # so does the check below, as the README's tour expects.
+        sys.path.insert(0, os.getcwd())
     spec = parse_spec(spec_text, source)
-    check_spec(spec)
+    for note in check_spec(spec):
+        print(f"note: {note}", file=sys.stderr)
     if not args.no_probe:
         _probe(spec)
     from rungway.scheduler.cli.progress import ProgressView
@@ -316,11 +326,30 @@ def cmd_export(args: argparse.Namespace) -> int:
     elif suffix == ".parquet":
         frame.to_parquet(out, index=False)
     elif suffix == ".json":
-        frame.to_json(out, orient="records", date_format="iso", indent=1)
+        out.write_text(_exact_json(frame))
     else:
         raise SpecError(f"unknown output format {suffix or '(none)'!r}: use .csv, .parquet or .json", field="--out")
     print(f"wrote {len(frame)} {args.what} rows to {out}")
     return 0
+
+
+def _exact_json(frame: Any) -> str:
+    """Records whose floats and times read back exactly: floats as Python's shortest
+    round-trip text, times as ISO 8601 with microseconds, missing values as null (pandas'
+    own JSON writer rounds to 10 digits and milliseconds)."""
+    import pandas as pd
+
+    def cell(value: Any) -> Any:
+        if value is None or value is pd.NaT or (isinstance(value, float) and math.isnan(value)):
+            return None
+        if isinstance(value, pd.Timestamp):
+            return value.isoformat()
+        if value is pd.NA:
+            return None
+        return value.item() if hasattr(value, "item") else value
+
+    records = [{str(k): cell(v) for k, v in row.items()} for row in frame.astype(object).to_dict(orient="records")]
+    return json.dumps(records, indent=1, allow_nan=False) + "\n"
 
 
 def cmd_plan(args: argparse.Namespace) -> int:

@@ -82,3 +82,13 @@ def test_segments_run_on_every_node_of_a_three_node_cluster(three_node_cluster, 
     for row in finals.itertuples():
         assert row.value == pytest.approx(value_at(trials.loc[row.trial, "space_x"], int(row.budget)), abs=1e-12)
     assert not math.isnan(driver.statistics()["best"]["value"])
+
+
+def test_run_prints_the_notes_of_the_spec_check(local_ray, tmp_path, capsys) -> None:
+    from rungway.scheduler.cli.main import main
+
+    path = tmp_path / "plain.toml"
+    path.write_text(spec_text("notes", objective="objectives_run:plain", trials=3))
+    assert main(["run", str(path), "--store", str(tmp_path / "store"), "--no-probe"]) == 0
+    err = capsys.readouterr().err
+    assert "note: objective: 'objectives_run:plain' takes (config, budget), so every promoted trial trains again" in err
