@@ -38,7 +38,7 @@ from rungway.scheduler.core.estimate import planned_budget
 from rungway.scheduler.core.events import Continue, Drained, Failed, Segment
 from rungway.scheduler.core.search import SearchCore
 from rungway.scheduler.spec import SearchSpec
-from rungway.scheduler.store import StorageError
+from rungway.scheduler.store import StorageCorrupt, StorageError
 from rungway.workers.runner import SegmentOrder, SegmentSummary
 
 from .executor import Completion, Executor
@@ -187,14 +187,24 @@ class SearchDriver:
             core = SearchCore(self.plan, sampler)
             covered = 0
         else:
-            data = json.loads(state)
-            meta = data.get("meta", {})
-            self.budget_done = meta.get("budget_done", 0.0)
-            self.cpu_seconds = meta.get("cpu_seconds", 0.0)
-            self.elapsed_before = meta.get("elapsed", 0.0)
-            self.segments = meta.get("segments", 0)
-            covered = data.get("journal_seq", 0)
-            core = SearchCore.restore(data["core"], sampler)
+            try:
+                data = json.loads(state)
+                meta = data.get("meta", {})
+                self.budget_done = meta.get("budget_done", 0.0)
+                self.cpu_seconds = meta.get("cpu_seconds", 0.0)
+                self.elapsed_before = meta.get("elapsed", 0.0)
+                self.segments = meta.get("segments", 0)
+                covered = data.get("journal_seq", 0)
+                core = SearchCore.restore(data["core"], sampler)
+            except (ValueError, KeyError, TypeError, AttributeError, IndexError, RejectedEvent) as exc:
+                self.journal.close()
+                path = f"{self.files.journal_dir}/{HEAD_STATE}"
+                raise StorageCorrupt(
+                    f"{path}: the search's saved state is damaged ({type(exc).__name__}: {exc}), so the search "
+                    "cannot be resumed from it. Its results so far stay readable (trials.parquet, measurements/). "
+                    "Put back a copy of the file if you have one; otherwise run the spec again under another name",
+                    path=path,
+                ) from None
         self.core = core
         self.journal.resume_after(covered)
         started = time.perf_counter()

@@ -92,7 +92,7 @@ class _Search:
     team: str
     priority: int
     submitted_at: float
-    spec: SearchSpec
+    spec: SearchSpec | None  # None while the stored spec cannot be read (the search is faulted)
     spec_text: str
     state: str = "running"
     reason: str | None = None
@@ -150,20 +150,52 @@ class LabHead:
         return Path(self.store_root.removeprefix("file://")) / "lab"
 
     def _replay(self) -> None:
+        unreadable: dict[str, str | None] = {}
         for entry in self._journal.entries_after(0):
             kind, name = entry["e"], entry["name"]
             if kind == "submit":
-                text = self.store.search(name).read_spec()
+                try:
+                    text = self.store.search(name).read_spec()
+                    why = None
+                except StorageError as exc:
+                    text, why = "", str(exc)
                 if text is None:
                     log.warning("search %s was submitted but its spec is not in the store; skipped", name)
                     continue
-                self._searches[name] = _Search(name, entry["team"], int(entry["priority"]), float(entry["at"]),
-                                               parse_spec(text, source=name), text)
+                s = _Search(name, entry["team"], int(entry["priority"]), float(entry["at"]), None, text)
+                s.spec, unreadable[name] = self._parse_stored(name, text) if why is None else (None, why)
+                self._searches[name] = s
             elif name in self._searches:
                 s = self._searches[name]
                 s.state, s.reason = entry["state"], entry.get("reason")
+        for s in self._searches.values():
+            if s.spec is None:  # one search's damaged spec faults that search, not the head
+                s.state, s.reason = "faulted", unreadable[s.name]
+                log.warning("search %s is faulted: %s", s.name, s.reason)
         if self._searches:
             log.info("restored %d searches from the lab journal", len(self._searches))
+
+    def _parse_stored(self, name: str, text: str) -> tuple[SearchSpec | None, str | None]:
+        """The stored spec of search ``name``, or None and why it cannot be read."""
+        path = f"{self.store.search(name).layout.spec}"
+        try:
+            return parse_spec(text, source=path), None
+        except Exception as exc:  # noqa: BLE001 (a damaged file: any parse error faults the search)
+            return None, (f"its stored spec cannot be read: {exc}. Put back the spec it was submitted with "
+                          f"at {path}, then resume the search")
+
+    def _fault(self, s: _Search, what: str, exc: BaseException) -> None:
+        """Whatever went wrong with one search faults that search alone (state and reason shown
+        to its team and the admin); the head and every other search go on."""
+        log.warning("search %s faulted while %s", s.name, what, exc_info=exc)
+        reason = str(exc) if isinstance(exc, (StorageError, SpecError)) else f"{type(exc).__name__}: {exc}"
+        if s.driver is not None:
+            try:
+                self._close_driver(s)
+            except Exception:  # noqa: BLE001 (already faulting; the driver's own state is suspect)
+                log.warning("search %s: its driver could not be closed cleanly", s.name, exc_info=True)
+                s.driver = None
+        self._set_state(s, "faulted", f"{what}: {reason}")
 
     def _record(self, entry: dict[str, Any]) -> None:
         self._journal.append([entry])
@@ -242,6 +274,12 @@ class LabHead:
             s = self._get(name)
             if s.state not in ("paused", "faulted"):
                 raise WrongState(f"search {name!r} is {s.state}; only a paused or faulted search can be resumed")
+            if s.spec is None:
+                text = self.store.search(name).read_spec() or ""
+                spec, why = self._parse_stored(name, text)
+                if spec is None:
+                    raise WrongState(f"search {name!r} cannot resume: {why}")
+                s.spec, s.spec_text = spec, text
             self._set_state(s, "running", None)
             return self._info(s)
 
@@ -376,7 +414,10 @@ class LabHead:
                 # next periodic step (health, heartbeats, limits): 500 idle searches cost little.
                 if (grant or s.yielding or s.demand is None or now - s.last_step >= _IDLE_STEP
                         or s.driver.executor.news()):
-                    self._step(s, s.driver, grant, now)
+                    try:
+                        self._step(s, s.driver, grant, now)
+                    except Exception as exc:  # noqa: BLE001 (contained: this search's fault alone)
+                        self._fault(s, "running", exc)
                     s.last_step = now
             self._write_ledger()
             if now - self._ledger_compacted >= _COMPACT_SECONDS:
@@ -432,10 +473,9 @@ class LabHead:
                                             health=self.health, listener=self, persist_seconds=_PERSIST_SECONDS)
                     s.driver.begin()
                     s.driver.stagger(((i * 0.6180339887) % 1.0))
-                except (StorageError, SpecError) as exc:
+                except Exception as exc:  # noqa: BLE001 (contained: this search's fault alone)
                     s.driver = None
-                    self._set_state(s, "faulted", str(exc))
-                    log.warning("search %s cannot start: %s", s.name, exc)
+                    self._fault(s, "starting", exc)
 
     def _close_driver(self, s: _Search) -> RunReport | None:
         """End the search's driver (running segments requeued, state written) and let go of
@@ -585,10 +625,14 @@ class LabHead:
             # Over before this head started: read its state back from the store, once.
             from rungway.scheduler.head.executor import InlineExecutor
 
+            if s.spec is None:
+                return {}
             try:
                 d = SearchDriver(s.spec, s.spec_text, self.store_root, InlineExecutor(0.0))
-            except (StorageError, SpecError) as exc:
+            except Exception as exc:  # noqa: BLE001 (shown as the search's reason, never a 500)
                 log.warning("search %s: cannot read its state: %s", s.name, exc)
+                if s.reason is None:
+                    s.reason = f"its state cannot be read: {exc}"
                 return {}
             try:
                 s.last_stats = d.statistics()
@@ -603,9 +647,9 @@ class LabHead:
         running = len(s.driver.running) if s.driver is not None else 0
         return SearchInfo(
             name=s.name, team=s.team, priority=s.priority, state=s.state, reason=s.reason,  # type: ignore[arg-type]
-            submitted_at=s.submitted_at, metric=s.spec.metric, better=s.spec.better,
+            submitted_at=s.submitted_at, metric=s.spec.metric if s.spec else "", better=s.spec.better if s.spec else None,
             trials=int(stats.get("trials", 0)), segments=int(stats.get("segments", 0)),
-            running_segments=running, cpus_busy=running * float(s.spec.resources.cpus),
+            running_segments=running, cpus_busy=running * float(s.spec.resources.cpus) if s.spec else 0.0,
             cpu_seconds=float(stats.get("cpu_seconds", 0.0)),
             leader_value=_finite(best.get("value")), leader=best.get("trial"),
         )

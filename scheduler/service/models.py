@@ -45,7 +45,7 @@ class SearchInfo(_Model):
     reason: str | None = None
     submitted_at: float = Field(..., description="Unix time")
     metric: str
-    better: Literal["higher", "lower"]
+    better: Literal["higher", "lower"] | None  # None only while a faulted search's spec cannot be read
     trials: int = 0
     segments: int = 0
     running_segments: int = 0
