@@ -9,10 +9,19 @@ Where the settings come from, first found wins:
 
 - the head's URL: the ``url`` argument, ``$RUNGWAY_HEAD``, ``http://127.0.0.1:8470``;
 - the token: the ``token`` argument, the ``token_file`` argument, ``$RUNGWAY_TOKEN``, the file
-  named by ``$RUNGWAY_TOKEN_FILE``.
+  named by ``$RUNGWAY_TOKEN_FILE``;
+- a proxy to reach the head through: the ``proxy`` argument, ``$RUNGWAY_HEAD_PROXY``, else none.
 
-Redirects are not followed: urllib would resend the Authorization header to wherever the
-redirect points.
+The token goes to the head and nowhere else:
+
+- The usual proxy variables (``http_proxy``, ``HTTPS_PROXY``, ``all_proxy``...) are ignored:
+  they are set for the rest of the world, and an HTTP proxy sees every header of a plain
+  ``http://`` request, the token included (the default head is 127.0.0.1). A head that can
+  only be reached through a proxy takes it explicitly: ``proxy="http://host:port"`` or
+  ``RUNGWAY_HEAD_PROXY=http://host:port``. That proxy sees the token of an ``http://`` head;
+  an ``https://`` head is tunnelled through it (CONNECT), the token encrypted.
+- Redirects are not followed: urllib would resend the Authorization header to wherever the
+  redirect points. A 3xx answer raises :class:`LabClientError` with its status and Location.
 """
 
 from __future__ import annotations
@@ -32,6 +41,7 @@ DEFAULT_HEAD = "http://127.0.0.1:8470"
 HEAD_ENV = "RUNGWAY_HEAD"
 TOKEN_ENV = "RUNGWAY_TOKEN"
 TOKEN_FILE_ENV = "RUNGWAY_TOKEN_FILE"
+PROXY_ENV = "RUNGWAY_HEAD_PROXY"
 
 
 class LabClientError(Exception):
@@ -52,7 +62,24 @@ class HeadUnreachable(LabClientError):
 
 class _NoRedirects(urllib.request.HTTPRedirectHandler):
     def redirect_request(self, *args: Any, **kwargs: Any) -> None:
-        return None  # urllib then raises HTTPError for the 3xx, which we report
+        return None  # urllib then raises HTTPError for the 3xx, which _call reports
+
+
+def _opener(proxy: str | None) -> urllib.request.OpenerDirector:
+    """No redirects; no proxy but ``proxy`` (an empty ProxyHandler also stops urllib from
+    reading the proxy variables of the environment)."""
+    proxies = {"http": proxy, "https": proxy} if proxy else {}
+    return urllib.request.build_opener(urllib.request.ProxyHandler(proxies), _NoRedirects)
+
+
+def _check_proxy(proxy: str, source: str) -> str:
+    proxy = proxy.strip()
+    parts = urllib.parse.urlsplit(proxy if "://" in proxy else "http://" + proxy)
+    if parts.scheme not in ("http", "https") or not parts.hostname:
+        shown = proxy if "@" not in proxy else proxy.split("://")[0] + "://<credentials hidden>@..."
+        raise LabClientError(None, f"{source} must be an HTTP proxy's address, http://host:port "
+                                   f"(got {shown!r}); leave it unset to reach the head directly")
+    return proxy
 
 
 def resolve_token(token: str | None = None, token_file: str | os.PathLike[str] | None = None) -> str:
@@ -83,13 +110,21 @@ class LabClient:
     """The head's API as Python calls. Every method returns the decoded JSON answer."""
 
     def __init__(self, url: str | None = None, token: str | None = None, timeout: float = 30, *,
-                 token_file: str | os.PathLike[str] | None = None) -> None:
+                 token_file: str | os.PathLike[str] | None = None, proxy: str | None = None) -> None:
+        """``proxy``: reach the head through this HTTP proxy (``http://host:port``); default
+        ``$RUNGWAY_HEAD_PROXY``, else no proxy at all, whatever ``http_proxy`` and the like say."""
         self.url = (url or os.environ.get(HEAD_ENV) or DEFAULT_HEAD).rstrip("/")
         if urllib.parse.urlsplit(self.url).scheme not in ("http", "https"):
             raise LabClientError(None, f"the head's URL must start with http:// or https:// (got {self.url!r})")
+        if proxy:
+            self.proxy: str | None = _check_proxy(proxy, "the proxy argument")
+        elif os.environ.get(PROXY_ENV, "").strip():
+            self.proxy = _check_proxy(os.environ[PROXY_ENV], f"${PROXY_ENV}")
+        else:
+            self.proxy = None
         self._token = resolve_token(token, token_file)
         self.timeout = timeout
-        self._opener = urllib.request.build_opener(_NoRedirects)
+        self._opener = _opener(self.proxy)
 
     def __repr__(self) -> str:  # never the token
         return f"LabClient({self.url!r})"
@@ -139,12 +174,21 @@ class LabClient:
                 return json.loads(response.read() or b"null")
         except urllib.error.HTTPError as exc:
             with exc:
+                if 300 <= exc.code < 400:
+                    raise LabClientError(exc.code, self._redirected(exc)) from None
                 raise LabClientError(exc.code, _detail(exc.read(), exc.reason)) from None
         except (urllib.error.URLError, OSError, http.client.HTTPException) as exc:
             reason = getattr(exc, "reason", exc)
             raise HeadUnreachable(f"cannot reach the head at {self.url}: {reason}") from None
         except json.JSONDecodeError:
             raise LabClientError(None, f"the head at {self.url} answered something that is not JSON") from None
+
+    def _redirected(self, exc: urllib.error.HTTPError) -> str:
+        location = exc.headers.get("Location") if exc.headers is not None else None
+        where = f"to {location}" if location else "with no Location"
+        return (f"the head at {self.url} answered {exc.code} {exc.reason}, a redirect {where}; it was not "
+                "followed, so the token was not re-sent there. Point --head (or $RUNGWAY_HEAD) at the URL "
+                "the head itself serves on")
 
 
 def _quote(name: str) -> str:
