@@ -22,7 +22,7 @@ def local_ray() -> Iterator[None]:
     _worker_path()
     if ray.is_initialized():
         ray.shutdown()
-    ray.init(num_cpus=2, include_dashboard=False, logging_level="ERROR")
+    ray.init(address="local", num_cpus=2, include_dashboard=False, logging_level="ERROR")  # never a cluster found on the machine
     yield
     ray.shutdown()
 
