@@ -29,6 +29,7 @@ Rules, in the order they are applied:
 
 from __future__ import annotations
 
+import ipaddress
 import logging
 import math
 import time
@@ -191,6 +192,22 @@ class _BodyLimit(_Middleware):
         await _error(413, f"request body over the head's limit of {self.limit} bytes")(scope, receive, send)
 
 
+def _client_group(host: str) -> str:
+    """The unit the unknown-token limit counts by: every loopback address is one machine (a
+    local user could rotate through 127.0.0.0/8), an IPv6 client its /64 (one site's block)."""
+    try:
+        address = ipaddress.ip_address(host)
+    except ValueError:
+        return host
+    if address.is_loopback:
+        return "loopback"
+    if address.version == 6:
+        if address.ipv4_mapped is not None:
+            return _client_group(str(address.ipv4_mapped))
+        return str(ipaddress.ip_network(f"{address}/64", strict=False))
+    return host
+
+
 class _FailedTokens:
     """Unknown tokens per client host in a sliding window. Checking an unknown token costs one
     PBKDF2 per configured hash (auth.py), so a host past ``limit`` in ``window`` seconds is
@@ -246,7 +263,7 @@ class _Authenticate(_Middleware):
             if scheme.lower() != "bearer" or not token:
                 reason = "the Authorization header is not 'Bearer <token>'"
             else:
-                host = scope["client"][0] if scope.get("client") else "-"
+                host = _client_group(scope["client"][0]) if scope.get("client") else "-"
                 wait = self.failures.retry_after(host)
                 known = getattr(self.authenticator, "known", None)
                 if wait is not None and known is not None and (caller := known(token)) is not None:

@@ -425,3 +425,23 @@ def test_every_operation_answers_as_documented(lab_schema: Any, tokens: dict[str
 
 def test_the_property_run_covers_every_operation(lab_schema: Any) -> None:
     assert {(op.ok().method.upper(), op.ok().path) for op in lab_schema.get_all_operations()} == set(OPERATIONS)
+
+
+def test_rotating_loopback_addresses_does_not_escape_the_unknown_token_limit(head: Any, lab_config: Any,
+                                                                             tokens: dict[str, str]) -> None:
+    now = [1000.0]
+    app = make_app(head, Authenticator(lab_config), max_body_bytes=LIMIT, failed_tokens_per_minute=3,
+                   clock=lambda: now[0])
+    for i in range(3):  # three guesses, each from another address of 127.0.0.0/8
+        with TestClient(app, client=(f"127.0.{i}.{i + 2}", 40000 + i)) as client:
+            assert_error(client.get("/v1/whoami", headers=bearer(f"rgw_guess-{i}")), 401)
+    with TestClient(app, client=("127.9.9.9", 40009)) as client:
+        assert "too many unknown tokens" in assert_error(client.get("/v1/whoami", headers=bearer("rgw_guess-9")), 429)
+    # An IPv6 client is counted by its /64.
+    for i in range(3):
+        with TestClient(app, client=(f"2001:db8::{i + 1}", 40100 + i)) as client:
+            assert_error(client.get("/v1/whoami", headers=bearer(f"rgw_v6-{i}")), 401)
+    with TestClient(app, client=("2001:db8::ff", 40200)) as client:
+        assert_error(client.get("/v1/whoami", headers=bearer("rgw_v6-9")), 429)
+    with TestClient(app, client=("2001:db8:1::1", 40300)) as client:  # another /64
+        assert_error(client.get("/v1/whoami", headers=bearer("rgw_v6-x")), 401)
