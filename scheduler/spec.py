@@ -455,7 +455,7 @@ class SamplerSection(BaseModel):
 
 
 class LimitsSection(BaseModel):
-    """``[limits]``: when the search stops, and how often a crashing trial is retried."""
+    """``[limits]``: when the search stops, and how often a failing trial is retried."""
 
     model_config = _SECTION
 
@@ -464,6 +464,11 @@ class LimitsSection(BaseModel):
     deadline: Duration | None = None
     """Wall-clock limit in seconds (the file may say ``"30m"``)."""
     max_crashes: Annotated[int, _int_at_least(0)] = 2
+    """Retries of a trial whose code raised or whose worker process died (exit, signal, OOM kill)."""
+    max_losses: Annotated[int, _int_at_least(0)] = 3
+    """Requeues of a trial whose machine died or whose segment fell silent; one more loss fails it."""
+    max_consecutive_failures: Annotated[int, _int_at_least(0)] = 10
+    """This many trials in a row failing at their first rung stop the search as failing (0: never)."""
     hang_timeout: Duration | None = None
     """Seconds a segment may stay silent before it is cancelled."""
 
@@ -580,6 +585,8 @@ class SearchSpec(BaseModel):
             maximize=self.maximize,
             max_trials=limits.trials,
             max_crashes=limits.max_crashes,
+            max_losses=limits.max_losses,
+            max_consecutive_failures=limits.max_consecutive_failures,
             sync_trials=ladder.sync_trials,
             iterations=ladder.iterations if ladder.iterations is not None else 1,
             hyperband_counts=ladder.hyperband_counts or "formula",  # type: ignore[arg-type]

@@ -1,7 +1,10 @@
 """A first look at a user's objective before a search starts.
 
-Runs the objective once, in this process, on one sampled configuration at the ladder's
-minimum budget, with checkpoints kept in memory. A search whose objective raises, returns a
+Runs the objective once on one sampled configuration at the ladder's minimum budget, with
+checkpoints kept in memory: in a child process (:func:`probe_in_child`, what ``rungway run``
+does), so that an objective that hangs meets a time limit, one that exits or is killed ends
+only the child, and whatever it prints stays off the command's own output (its tail is shown
+when the probe fails). A search whose objective raises, returns a
 string, or returns NaN at the first try is almost always a broken spec; saying so before
 anything is written to the store saves a cluster's worth of failed segments. ``rungway run
 --no-probe`` skips it (for objectives too expensive to run twice at the minimum budget).
@@ -9,7 +12,13 @@ anything is written to the store saves a cluster's worth of failed segments. ``r
 
 from __future__ import annotations
 
+import json
 import math
+import os
+import signal
+import subprocess
+import sys
+import tempfile
 import traceback
 from collections.abc import Mapping
 from typing import Any
@@ -19,7 +28,9 @@ from rungway.scheduler.core.errors import SpecError
 from .context import Context, TrialCulled
 from .objective import NOT_FINITE, Objective, interpret_result
 
-__all__ = ["probe_objective"]
+__all__ = ["probe_objective", "probe_in_child"]
+
+_TAIL = 2000  # characters of the child's output shown when the probe fails
 
 
 def probe_objective(objective: Objective, config: Mapping[str, Any], budget: int | float, metric: str) -> float:
@@ -57,3 +68,63 @@ def probe_objective(objective: Objective, config: Mapping[str, Any], budget: int
             field="objective",
         )
     return value
+
+
+def _tail(text: str) -> str:
+    text = text.strip()
+    return text if len(text) <= _TAIL else "..." + text[-_TAIL:]
+
+
+def probe_in_child(objective_path: str, config: Mapping[str, Any], budget: int | float, metric: str,
+                   timeout: float) -> float:
+    """:func:`probe_objective` in a child Python process that sees this one's import path;
+    SpecError(field="objective") if it fails, exits, is killed or outlives ``timeout`` seconds."""
+    where = f"{objective_path} on {dict(config)} at budget {budget}"
+    with tempfile.TemporaryDirectory(prefix="rungway-probe-") as folder:
+        answer = os.path.join(folder, "answer.json")
+        order = json.dumps({"objective": objective_path, "config": dict(config), "budget": budget, "metric": metric,
+                            "answer": answer})
+        env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in sys.path if p))
+        try:
+            done = subprocess.run([sys.executable, "-m", "rungway.workers.probe"], input=order, env=env,
+                                  capture_output=True, text=True, timeout=timeout)
+        except subprocess.TimeoutExpired as exc:
+            output = (exc.stdout or b"").decode(errors="replace") if isinstance(exc.stdout, bytes) else (exc.stdout or "")
+            raise SpecError(
+                f"the objective did not finish a first try within {timeout:g} s ({where}); if it is just slow, "
+                "raise --probe-timeout or pass --no-probe" + (f"; its output ended with:\n{_tail(output)}" if output else ""),
+                field="objective",
+            ) from None
+        output = _tail(done.stdout + done.stderr)
+        try:
+            with open(answer) as fh:
+                result = json.load(fh)
+        except (OSError, ValueError):
+            result = None
+    if result is None:
+        if done.returncode < 0:
+            how = f"was killed by signal {signal.Signals(-done.returncode).name}"
+        else:
+            how = f"ended its process with exit code {done.returncode}"
+        raise SpecError(f"the objective {how} on a first try ({where}); fix it, or pass --no-probe to skip this "
+                        "check" + (f"; its output ended with:\n{output}" if output else ""), field="objective")
+    if "error" in result:
+        raise SpecError(result["error"] + (f"; its output ended with:\n{output}" if output else ""), field="objective")
+    return float(result["value"])
+
+
+def _child() -> None:
+    from .objective import load_objective
+
+    order = json.loads(sys.stdin.read())
+    try:
+        value = probe_objective(load_objective(order["objective"]), order["config"], order["budget"], order["metric"])
+        result: dict[str, Any] = {"value": value}
+    except SpecError as exc:
+        result = {"error": str(exc).removeprefix("objective: ")}
+    with open(order["answer"], "w") as fh:
+        json.dump(result, fh)
+
+
+if __name__ == "__main__":
+    _child()

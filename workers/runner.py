@@ -9,7 +9,9 @@ that accepts a result never accepts one whose measurements could be missing.
 
 User code runs inside a single ``try``: whatever it raises or returns becomes a summary
 (``crashed`` with its traceback, or a ``result`` with the reason it is unusable), never an
-exception out of the worker. Storage faults are the exception: they come back as
+exception out of the worker; ``SystemExit`` and ``KeyboardInterrupt`` too (with the exit code
+in the reason), so the worker process lives on. A worker that dies (``os._exit``, a signal)
+is seen only by the head (``head/executor.py``). Storage faults are the exception: they come back as
 ``storage`` so the head can pause the search instead of blaming the trial.
 """
 
@@ -30,7 +32,7 @@ from typing import Any, Literal, Protocol
 from .context import Context, TrialCulled
 from .objective import NOT_FINITE, Objective, interpret_result, load_objective
 
-__all__ = ["SegmentOrder", "SegmentSummary", "HeadLink", "run_segment", "node_name"]
+__all__ = ["SegmentOrder", "SegmentSummary", "HeadLink", "run_segment", "node_name", "describe_error"]
 
 Budget = int | float
 Outcome = Literal["result", "stopped", "yielded", "crashed", "storage"]
@@ -85,10 +87,15 @@ class HeadLink(Protocol):
     """The worker's line to the head while a segment runs (a Ray actor in production)."""
 
     def milestone(self, trial: int, attempt: int, rung: int, value: float) -> bool:
-        """A rung result in the stopping form; True to run on, False to stop."""
+        """A rung result in the stopping form; True to run on, False to stop. Waits for the
+        head's verdict, but never in a blocking Ray call (which would lend the task's CPU to
+        a queued segment: see workers/link.py)."""
         ...
 
-    def asked_to_yield(self, trial: int, attempt: int) -> bool: ...
+    def asked_to_yield(self, trial: int, attempt: int) -> bool:
+        """Whether the head asks the segment to yield: a local read (the production link's
+        beat thread brings the answer), never a blocking call to the head."""
+        ...
 
     def beat(self, trial: int, attempt: int, budget: Budget) -> None: ...
 
@@ -123,7 +130,7 @@ def run_segment(
     *,
     node: str | None = None,
     clock: Callable[[], float] = time.time,
-    yield_poll_seconds: float = 1.0,
+    yield_poll_seconds: float = 0.0,
 ) -> SegmentSummary:
     """Run ``order`` to its target budget and return what happened. ``node`` names the
     machine in the measurements (default: $RUNGWAY_NODE or the host name)."""
@@ -153,6 +160,8 @@ def run_segment(
     except StorageError as exc:
         return _storage_fault(summary, exc, clock, cpu_start)
     except Exception as exc:  # the objective does not import on this worker, or its state does not unpickle
+        return _crash(summary, exc, clock, cpu_start)
+    except BaseException as exc:  # its module calls sys.exit() on import, say: the trial's crash
         return _crash(summary, exc, clock, cpu_start)
 
     rows: list[dict[str, Any]] = []  # reports not yet written
@@ -189,6 +198,8 @@ def run_segment(
     def yield_flag() -> bool:
         if link is None:
             return False
+        if last_poll[1]:  # a request to yield is never withdrawn: once seen, reused
+            return True
         now = clock()
         if now - last_poll[0] >= yield_poll_seconds:
             last_poll[0], last_poll[1] = now, link.asked_to_yield(order.trial, order.attempt)
@@ -212,6 +223,9 @@ def run_segment(
     except Exception as exc:
         _write_rows(files, rows, summary)
         return _crash(summary, exc, clock, cpu_start)
+    except BaseException as exc:  # SystemExit, KeyboardInterrupt: the worker lives on; the trial crashed
+        _write_rows(files, rows, summary)
+        return _crash(summary, exc, clock, cpu_start)
 
     ended = clock()
     summary.ended = ended
@@ -219,7 +233,7 @@ def run_segment(
     if returned is _STOPPED:
         summary.budget = ctx.measurements[-1][0] if ctx.measurements else start
     elif objective.form == "resumable" and _short_of_target(ctx, order) and ctx.asked_to_yield:
-        # Asked only when it could matter: the flag may cost a round trip to the head.
+        # Asked only when it could matter (a cheap local read, but a fake link may count it).
         summary.outcome = "yielded"
         summary.budget = ctx.saved_budget if ctx.saved_budget is not None else start
     else:
@@ -269,10 +283,24 @@ def _write_rows(files: Any, rows: list[dict[str, Any]], summary: SegmentSummary)
         files.write_measurements(rows)
 
 
+def describe_error(exc: BaseException) -> str:
+    """One line for a failure record: the exception's type and message, and for
+    ``SystemExit`` the exit status the process would have ended with."""
+    name = type(exc).__name__
+    if isinstance(exc, SystemExit):
+        code = exc.code
+        if code is None or isinstance(code, int):
+            return f"{name}: the objective exited with exit code {code or 0}"
+        return f"{name}: the objective exited with exit code 1: {code}"  # sys.exit("message")
+    if isinstance(exc, KeyboardInterrupt):
+        return f"{name}: the objective raised KeyboardInterrupt" + (f": {exc}" if str(exc) else "")
+    return f"{name}: {exc}"
+
+
 def _crash(summary: SegmentSummary, exc: BaseException, clock: Callable[[], float], cpu_start: float) -> SegmentSummary:
     summary.outcome = "crashed"
     summary.error_type = type(exc).__name__
-    summary.reason = f"{type(exc).__name__}: {exc}"
+    summary.reason = describe_error(exc)
     summary.traceback = traceback.format_exc()
     summary.ended = clock()
     summary.cpu_seconds = time.process_time() - cpu_start

@@ -1,8 +1,10 @@
 """The ``rungway`` command: run a search, run the demo, show and export results.
 
 Exit status: 0 done, 2 a mistake in the user's input (the message says which field or file
-and what would be valid; no traceback), 3 the search paused on a storage fault, 130 stopped
-by Ctrl-C (everything written so far is kept; the same command resumes).
+and what would be valid; no traceback), 3 the search paused on a storage fault, 4 the search
+stopped as failing (every trial failed, or ``limits.max_consecutive_failures`` trials in a
+row failed at their first rung; the first recorded failure is printed; the same command tries
+again), 130 stopped by Ctrl-C (everything written so far is kept; the same command resumes).
 """
 
 from __future__ import annotations
@@ -24,6 +26,7 @@ __all__ = ["main"]
 DEFAULT_STORE = "rungway-store"
 EXIT_USER_ERROR = 2
 EXIT_STORAGE = 3
+EXIT_FAILING = 4
 EXIT_INTERRUPTED = 130
 
 
@@ -43,6 +46,8 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--cpus", type=int, help="CPUs for the embedded local Ray (default: all of this machine)")
         p.add_argument("--json", action="store_true", help="print the final summary as JSON")
         p.add_argument("--no-probe", action="store_true", help="skip trying the objective once here before the search starts")
+        p.add_argument("--probe-timeout", type=float, default=300.0, metavar="SECONDS",
+                       help="how long the first try of the objective may take (default: 300)")
         p.add_argument("--retry-storage", type=float, metavar="SECONDS",
                        help="on a storage fault, wait this long and resume, until it is fixed (default: stop with status 3)")
 
@@ -119,7 +124,7 @@ def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
     for note in check_spec(spec):
         print(f"note: {note}", file=sys.stderr)
     if not args.no_probe:
-        _probe(spec)
+        _probe(spec, args.probe_timeout)
     from rungway.scheduler.cli.progress import ProgressView
     from rungway.scheduler.head.cluster import ray_session
     from rungway.scheduler.head.driver import RunReport, SearchDriver
@@ -169,6 +174,8 @@ def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
         "finished": report.finished,
         "interrupted": report.interrupted,
         "paused": report.paused_reason,
+        "failing": report.failing,
+        "first_failure": report.first_failure,
         "elapsed_seconds": round(report.elapsed, 3),
         "segments": report.segments,
         "trials": stats.get("trials", 0),
@@ -182,6 +189,11 @@ def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
     if report.paused_reason:
         print(f"paused: {report.paused_reason}; fix it, then run the same command to resume", file=sys.stderr)
         return EXIT_STORAGE
+    if report.failing:
+        print(f"failing: {report.failing}\nfirst failure: {report.first_failure or 'none recorded'}\n"
+              f"every failure: rungway export {spec.name} --what failures --out failures.csv; "
+              "fix the objective, then run the same command to try again", file=sys.stderr)
+        return EXIT_FAILING
     if report.interrupted:
         return EXIT_INTERRUPTED
     return 0
@@ -195,15 +207,16 @@ def _sleep_unless(stop: dict[str, bool], seconds: float) -> None:
         time.sleep(min(0.2, seconds))
 
 
-def _probe(spec: Any) -> None:
-    """Try the objective once in this process before anything is written (workers/probe.py)."""
+def _probe(spec: Any, timeout: float) -> None:
+    """Try the objective once, in a child process, before anything is written (workers/probe.py)."""
     import numpy as np
 
-    from rungway.workers.objective import load_objective
-    from rungway.workers.probe import probe_objective
+    from rungway.workers.probe import probe_in_child
 
     config = spec.space().sample(np.random.default_rng(spec.seed + 1))
-    probe_objective(load_objective(spec.objective), config, spec.ladder.min, spec.metric)
+    print(f"trying the objective once at budget {spec.ladder.min} (at most {timeout:g} s; --no-probe skips this)",
+          file=sys.stderr)
+    probe_in_child(spec.objective, config, spec.ladder.min, spec.metric, timeout)
 
 
 def _absolute_root(root: str) -> str:
@@ -225,8 +238,12 @@ def _plain(value: Any) -> Any:
 
 
 def _print_summary(summary: dict[str, Any], metric: str) -> None:
-    state = "finished" if summary["finished"] else "stopped" if summary["interrupted"] else "paused"
+    state = ("finished" if summary["finished"] else "failing" if summary["failing"] else
+             "stopped" if summary["interrupted"] else "paused")
     print(f"search {summary['search']} {state} after {summary['elapsed_seconds']:.1f}s: {summary['trials']} trials, {summary['segments']} segments")
+    if summary["failing"]:
+        print(f"failing: {summary['failing']}")
+        print(f"first failure: {summary['first_failure'] or 'none recorded'}")
     best = summary["best"]
     if best:
         print(f"best {metric}: {best['value']:.6g} (trial {best['trial']}, budget {best['budget']})")

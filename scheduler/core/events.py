@@ -21,6 +21,7 @@ __all__ = [
     "Yielded",
     "Cancel",
     "StopAdmitting",
+    "Resume",
     "Event",
     # commands and verdicts
     "Segment",
@@ -57,10 +58,16 @@ class Report:
 
 @dataclass(frozen=True, slots=True)
 class Lost:
-    """The segment's machine or worker process died; not the trial's fault."""
+    """The segment's machine went away (or the head stopped it); not the trial's fault.
+
+    ``counted`` losses (the machine died, the segment fell silent) count towards the trial's
+    ``max_losses``, so a trial that keeps taking its machine down ends; a segment the head
+    stopped itself (it was stopped, paused or restarted) is not counted.
+    """
 
     trial: int
     attempt: int
+    counted: bool = True
 
 
 @dataclass(frozen=True, slots=True)
@@ -92,7 +99,13 @@ class StopAdmitting:
     """Start no more new trials; let what is under way drain."""
 
 
-Event = Ask | Report | Lost | Crashed | Yielded | Cancel | StopAdmitting
+@dataclass(frozen=True, slots=True)
+class Resume:
+    """A new run of a search that stopped as failing: its run of first-rung failures starts
+    over, so it gets another ``max_consecutive_failures`` trials (its objective may be fixed)."""
+
+
+Event = Ask | Report | Lost | Crashed | Yielded | Cancel | StopAdmitting | Resume
 
 
 # ---- commands and verdicts ----------------------------------------------------------------

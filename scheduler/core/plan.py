@@ -55,6 +55,10 @@ class SearchPlan:
     maximize: bool = False
     max_trials: int | None = None
     max_crashes: int = 2
+    max_losses: int = 3
+    """A trial lost more often than this (its machine or worker went away) fails."""
+    max_consecutive_failures: int = 10
+    """This many trials in a row failing at their first rung make the search *failing* (0: never)."""
     sync_trials: int | None = None
     iterations: int = 1
     hyperband_counts: HyperbandVariant = "formula"
@@ -66,8 +70,10 @@ class SearchPlan:
             value = getattr(self, name)
             if value is not None and (isinstance(value, bool) or not isinstance(value, int) or value < low):
                 raise SpecError(f"must be an integer >= {low} (got {value!r})", field=f"limits.{name}")
-        if isinstance(self.max_crashes, bool) or not isinstance(self.max_crashes, int) or self.max_crashes < 0:
-            raise SpecError(f"must be an integer >= 0 (got {self.max_crashes!r})", field="limits.max_crashes")
+        for name in ("max_crashes", "max_losses", "max_consecutive_failures"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, int) or value < 0:
+                raise SpecError(f"must be an integer >= 0 (got {value!r})", field=f"limits.{name}")
         if isinstance(self.iterations, bool) or not isinstance(self.iterations, int) or self.iterations < 1:
             raise SpecError(f"must be an integer >= 1 (got {self.iterations!r})", field="ladder.iterations")
         self.brackets()  # validates the geometry

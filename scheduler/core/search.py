@@ -21,6 +21,11 @@ O(log n), and amortised O(1) more for the board's bar. A result costs a heap pus
 promotion board (O(1) on average) and a sorted-list insertion, O(log n), at any other board
 (the stopping form adds one O(log n) rank). Configurations come from the sampler, a block at a
 time for the random sampler.
+
+Failures. A crash is retried up to ``plan.max_crashes`` times and a counted loss requeued up
+to ``plan.max_losses`` times; one more fails the trial. ``plan.max_consecutive_failures``
+trials in a row failing at their first rung, or every trial failing, make the search
+``failing``: the adapter ends the run and says so (a later run applies ``Resume``).
 """
 
 from __future__ import annotations
@@ -48,6 +53,7 @@ from .events import (
     Parked,
     Report,
     Requeued,
+    Resume,
     Culled,
     Segment,
     StopAdmitting,
@@ -57,7 +63,7 @@ from .ladder import Budget
 from .plan import SearchPlan
 from .ranking import PromotionBoard, RungBoard, to_loss
 from .samplers.base import Sampler
-from .states import ACTIVE, CANCELLED, FINAL_STATES, PARKED, QUEUED, STATES, TRANSITIONS, advance
+from .states import ACTIVE, CANCELLED, FAILED, FINAL_STATES, PARKED, QUEUED, STATES, TRANSITIONS, advance
 
 __all__ = ["SearchCore", "TrialView", "SNAPSHOT_FORMAT"]
 
@@ -84,7 +90,7 @@ class _Trial:
     """The core's record of one trial. ``rung`` is the rung worked towards while queued or
     active, and the last rung with a result otherwise; ``saved`` is the budget reached."""
 
-    __slots__ = ("id", "bracket", "state", "rung", "attempt", "saved", "loss", "record", "crashes", "config")
+    __slots__ = ("id", "bracket", "state", "rung", "attempt", "saved", "loss", "record", "crashes", "losses", "config")
 
     def __init__(self, tid: int, bracket: int, config: dict[str, Any]) -> None:
         self.id = tid
@@ -96,6 +102,7 @@ class _Trial:
         self.loss: float | None = None  # the latest result
         self.record: float | None = None  # the best result at any rung
         self.crashes = 0
+        self.losses = 0  # counted losses (machine died, segment silent)
         self.config = config
 
 
@@ -132,11 +139,12 @@ class _Bracket:
 class TrialView:
     """A read-only look at one trial (for adapters, the CLI and tests)."""
 
-    __slots__ = ("id", "bracket", "state", "rung", "attempt", "budget", "loss", "record", "crashes", "config")
+    __slots__ = ("id", "bracket", "state", "rung", "attempt", "budget", "loss", "record", "crashes", "losses", "config")
 
     def __init__(self, t: _Trial) -> None:
         self.id, self.bracket, self.state, self.rung = t.id, t.bracket, t.state, t.rung
         self.attempt, self.budget, self.loss, self.crashes = t.attempt, t.saved, t.loss, t.crashes
+        self.losses = t.losses
         self.record = t.record
         self.config = dict(t.config)
 
@@ -167,14 +175,18 @@ class SearchCore:
         self._active = 0
         self._admitting = True
         self._cursor = 0  # asynchronous: next bracket to deal a new trial to; synchronous: bracket running
+        self._streak_limit = plan.max_consecutive_failures
+        self._streak = 0  # trials failed at their first rung since the last first-rung result
+        self._failed = 0  # trials failed
         self._handlers = {
             Ask: lambda e: self.ask(),
             Report: lambda e: self.report(e.trial, e.attempt, e.rung, e.value),
-            Lost: lambda e: self.lost(e.trial, e.attempt),
+            Lost: lambda e: self.lost(e.trial, e.attempt, e.counted),
             Crashed: lambda e: self.crashed(e.trial, e.attempt, e.reason),
             Yielded: lambda e: self.yielded(e.trial, e.attempt),
             Cancel: lambda e: self.cancel(e.trial),
             StopAdmitting: lambda e: self.stop_admitting(),
+            Resume: lambda e: self.resume(),
         }
 
     # ---- the one entry point ------------------------------------------------------------
@@ -191,6 +203,8 @@ class SearchCore:
 
     def ask(self) -> Segment | Idle | Drained:
         """A slot is free: the segment to run there, ``Idle`` or ``Drained``."""
+        if self._streak >= self._streak_limit > 0:  # failing: hand out nothing more
+            return IDLE if self._active else DRAINED
         if self._queue:
             return self._dispatch(self._trials[self._queue.popleft()])
         if self._synchronous:
@@ -321,6 +335,8 @@ class SearchCore:
             trial = self._running(tid, attempt)  # raises, saying why
         if rung != trial.rung:
             raise RejectedEvent(f"trial {tid}: a result for rung {rung} arrived, but it is running to rung {trial.rung}")
+        if rung == 0:
+            self._streak = 0  # a first-rung result: the objective can work
         loss = to_loss(float(value), self._maximize)
         bracket = self._brackets[trial.bracket]
         board = bracket.boards[rung]
@@ -355,9 +371,14 @@ class SearchCore:
         trial.state = _PARK.get(state) or advance(state, "park", tid)
         return Parked(tid, rung)
 
-    def lost(self, tid: int, attempt: int) -> Requeued:
-        """The worker or machine died: requeue from the last checkpoint; not the trial's fault."""
+    def lost(self, tid: int, attempt: int, counted: bool = True) -> Requeued | Failed:
+        """The machine went away (or the head stopped the segment): requeue from the last
+        checkpoint. A ``counted`` loss beyond ``plan.max_losses`` fails the trial instead."""
         trial = self._running(tid, attempt)
+        if counted:
+            trial.losses += 1
+            if trial.losses > self.plan.max_losses:
+                return self._fail(trial, f"lost {trial.losses} time{'s' if trial.losses > 1 else ''}")
         return self._requeue(trial, "requeue")
 
     def yielded(self, tid: int, attempt: int) -> Requeued:
@@ -371,10 +392,16 @@ class SearchCore:
         trial.crashes += 1
         if trial.crashes <= self.plan.max_crashes:
             return self._requeue(trial, "retry")
+        return self._fail(trial, reason)
+
+    def _fail(self, trial: _Trial, reason: str) -> Failed:
+        trial.state = advance(trial.state, "fail", trial.id)
         self._active -= 1
-        trial.state = advance(trial.state, "fail", tid)
+        self._failed += 1
+        if trial.rung == 0:  # no result yet, at any rung
+            self._streak += 1
         self._leave_barrier(trial)
-        return Failed(tid, reason)
+        return Failed(trial.id, reason)
 
     def _requeue(self, trial: _Trial, move: str) -> Requeued:
         trial.state = advance(trial.state, move, trial.id)
@@ -418,6 +445,8 @@ class SearchCore:
         sampler that runs dry makes that an overcount). A fair-sharing head uses it as the
         search's demand without asking, so nothing is committed early.
         """
+        if self._streak >= self._streak_limit > 0:
+            return 0  # failing: ``ask`` hands out nothing
         count = len(self._queue)
         if count >= limit:
             return limit
@@ -459,6 +488,24 @@ class SearchCore:
     def stop_admitting(self) -> None:
         """Start no new trials from now on (limits reached, or the user asked)."""
         self._admitting = False
+
+    def resume(self) -> None:
+        """A new run of the search: its run of first-rung failures starts over."""
+        self._streak = 0
+
+    @property
+    def failing(self) -> str | None:
+        """Why this search can only fail, or None: ``plan.max_consecutive_failures`` trials in
+        a row failed at their first rung (``ask`` then hands out nothing more), or every trial
+        failed and no new one will start."""
+        limit = self._streak_limit
+        if self._streak >= limit > 0:
+            return (f"{self._streak} trials in a row failed at their first rung "
+                    f"(limits.max_consecutive_failures = {limit})")
+        n = len(self._trials)
+        if n and self._failed == n and not self._admitting:
+            return f"every trial failed ({n} of {n})"
+        return None
 
     # ---- reading ----------------------------------------------------------------------------
 
@@ -529,6 +576,7 @@ class SearchCore:
             "active": self._active,
             "queued": len(self._queue),
             "admitting": self._admitting,
+            "failing": self.failing,
             "brackets": brackets,
             "best": None if not best or best[0].loss is None else {
                 "trial": best[0].id,
@@ -555,6 +603,7 @@ class SearchCore:
                 "loss": [x.loss for x in t],
                 "record": [x.record for x in t],
                 "crashes": [x.crashes for x in t],
+                "losses": [x.losses for x in t],
                 "config": [x.config for x in t],
             },
             "brackets": [
@@ -575,6 +624,7 @@ class SearchCore:
             "active": self._active,
             "admitting": self._admitting,
             "cursor": self._cursor,
+            "streak": self._streak,
             "sampler": self.sampler.state(),
         }
 
@@ -595,6 +645,8 @@ class SearchCore:
             trial.loss = cols["loss"][tid]
             trial.record = cols["record"][tid] if "record" in cols else trial.loss
             trial.crashes = cols["crashes"][tid]
+            trial.losses = cols["losses"][tid] if "losses" in cols else 0  # older snapshots counted none
+            core._failed += trial.state == FAILED
             core._trials.append(trial)
         for bracket, data in zip(core._brackets, snapshot["brackets"], strict=True):
             for board, bdata in zip(bracket.boards, data["boards"], strict=True):
@@ -616,5 +668,6 @@ class SearchCore:
         core._active = snapshot["active"]
         core._admitting = snapshot["admitting"]
         core._cursor = snapshot["cursor"]
+        core._streak = snapshot.get("streak", 0)
         sampler.restore(snapshot["sampler"])
         return core

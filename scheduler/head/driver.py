@@ -16,14 +16,19 @@ stopped is settled from the store: if its result rows are there, the result is a
 segment the head gave up on names an attempt the core no longer runs and is dropped.
 
 Storage faults end the run with a message saying what to fix (exit status 3 from the
-command); running it again, or ``--retry-storage``, resumes from the store.
+command); running it again, or ``--retry-storage``, resumes from the store. A search the core
+calls *failing* (too many trials in a row failed at their first rung, or every trial failed)
+ends the run too (``RunReport.failing``, with the first recorded failure; exit status 4); a
+later run journals ``resume`` and tries again.
 """
 
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
 import math
+import shutil
 import time
 from collections import deque
 from collections.abc import Callable
@@ -39,6 +44,7 @@ from rungway.scheduler.core.events import Continue, Drained, Failed, Segment
 from rungway.scheduler.core.search import SearchCore
 from rungway.scheduler.spec import SearchSpec
 from rungway.scheduler.store import StorageCorrupt, StorageError
+from rungway.scheduler.store.lease import SearchLease
 from rungway.workers.runner import SegmentOrder, SegmentSummary
 
 from .executor import Completion, Executor
@@ -59,6 +65,10 @@ class RunReport:
     finished: bool
     interrupted: bool = False
     paused_reason: str | None = None
+    failing: str | None = None
+    """Why the search stopped as *failing* (it could only fail; ``SearchCore.failing``)."""
+    first_failure: str | None = None
+    """When failing: the search's first recorded failure, ``trial T attempt A: type: message``."""
     elapsed: float = 0.0
     segments: int = 0
     statistics: dict[str, Any] = field(default_factory=dict)
@@ -120,6 +130,7 @@ class SearchDriver:
         flush_seconds: float = 0.02,
         health: HealthSettings = HealthSettings(),
         listener: SegmentListener | None = None,
+        lease: bool = True,
     ) -> None:
         from rungway.scheduler.store import open_store
 
@@ -157,7 +168,21 @@ class SearchDriver:
         self._last_drain = 0.0
         self._last_fill = 0.0
         self._segments_this_run = 0
-        self.core = self._restore_or_start()
+        # One writer per search (store/lease.py); a read-only look (lease=False) takes none.
+        self.lease = SearchLease(str(self._journal_dir().parent), spec.name) if lease else None
+        if self.lease is not None:
+            self.lease.acquire()
+        try:
+            self.core = self._restore_or_start()
+        except BaseException:
+            if self.lease is not None:
+                self.lease.release()
+                if self.files.read_spec() is None:  # refused before anything was written: leave no folder
+                    shutil.rmtree(Path(self.lease.folder), ignore_errors=True)
+                    for empty in (self._journal_dir(), Path(self.lease.folder).parent):  # only if empty
+                        with contextlib.suppress(OSError):
+                            empty.rmdir()
+            raise
 
     # ---- state in the store ------------------------------------------------------------
 
@@ -183,6 +208,11 @@ class SearchDriver:
         self.journal = Journal(self._journal_dir())
         if state is None:
             if stored_spec is None:
+                twin = self.files.store.case_twin(self.spec.name)
+                if twin is not None:
+                    self.journal.close()
+                    raise SpecError(f"the store already holds a search named {twin!r}, which differs from "
+                                    f"{self.spec.name!r} only in letter case; give this one another name", field="name")
                 self.files.write_spec(self.spec_text)
             core = SearchCore(self.plan, sampler)
             covered = 0
@@ -256,8 +286,8 @@ class SearchDriver:
         try:
             if kind == "rep":
                 return core.report(entry["t"], entry["a"], entry["r"], float(entry["v"]))
-            if kind == "lost":
-                return core.lost(entry["t"], entry["a"])
+            if kind == "lost":  # entries without ``counted`` (the head's own stops, older journals) count not
+                return core.lost(entry["t"], entry["a"], bool(entry.get("counted", False)))
             if kind == "crash":
                 return core.crashed(entry["t"], entry["a"], entry.get("why", ""))
             if kind == "yield":
@@ -266,6 +296,8 @@ class SearchDriver:
                 return core.cancel(entry["t"])
             if kind == "stop":
                 return core.stop_admitting()
+            if kind == "resume":
+                return core.resume()
             if kind == "done":  # stopping form: the segment ended after its rung results
                 return None
         except RejectedEvent as exc:  # refused when it happened too; the core is right
@@ -319,7 +351,10 @@ class SearchDriver:
     def persist(self) -> None:
         """Write the core's snapshot and the trials table (both atomically), then let the
         journal drop what the snapshot covers."""
+        if self.lease is not None:
+            self.lease.check()  # a head that lost its search's lease writes no snapshot over the new holder's
         meta = {
+            "lease": None if self.lease is None else self.lease.token,  # the fencing token it was written under
             "budget_done": self.budget_done,
             "cpu_seconds": self.cpu_seconds,
             "elapsed": self.elapsed,
@@ -378,6 +413,9 @@ class SearchDriver:
         self._drained = False
         self._pending: list[Completion] = []  # finished segments whose results wait for the next write
         self._pending_since: float | None = None
+        if self.core.failing is not None:  # it stopped as failing before: give it another run of trials
+            log.warning("search %s stopped as failing before (%s); trying again", self.spec.name, self.core.failing)
+            self._log({"e": "resume"})
 
     def stagger(self, phase: float) -> None:
         """Shift this driver's periodic work (snapshot, health check) by ``phase`` (0 to 1) of
@@ -391,6 +429,8 @@ class SearchDriver:
         Sets ``over`` when the search drained or paused on a storage fault."""
         report = self.report
         try:
+            if self.lease is not None:
+                self.lease.renew()
             self._check_limits()
             # Results first, then new segments: one journal write covers both (the segments'
             # entries must be durable before they are submitted).
@@ -411,16 +451,21 @@ class SearchDriver:
                     report.paused_reason = reason
                     self.over = True
                     return
+                if self._stop_if_failing():
+                    return
             self._drained = self._fill(self.clock(), grant) or self._drained
             if self._drained and not self.running and not self._pending:
-                report.finished = True
-                self.over = True
+                if not self._stop_if_failing():
+                    report.finished = True
+                    self.over = True
                 return
             self._relay_milestones()
             self._commit()
             if now - self._last_health >= self.health.check_every:
                 self._check_health(now)
                 self._last_health = now
+                if self._stop_if_failing():
+                    return
             if self.progress is not None:
                 self.time_left.maybe_update(now, self._slots(prefetch=False))
             if self.progress is not None and now - self._last_progress >= self.progress_seconds:
@@ -449,7 +494,14 @@ class SearchDriver:
             self.executor.close()
         finally:
             self.journal.close()
+            if self.lease is not None:
+                self.lease.release()
         report.finished = report.finished and not report.paused_reason
+        if report.failing is not None and not report.paused_reason:
+            try:
+                report.first_failure = self.first_failure()
+            except StorageError as exc:
+                report.first_failure = f"(the failures table cannot be read: {exc})"
         report.elapsed = self.elapsed
         report.segments = self.segments
         report.statistics = self.statistics()
@@ -586,7 +638,7 @@ class SearchDriver:
             if entry["e"] in ("lost", "crash"):
                 self._count_node_failure(run.node)
             if isinstance(out, Failed):
-                log.warning("trial %s failed after %s crashes: %s", c.trial, self.plan.max_crashes + 1, entry.get("why"))
+                self._trial_failed(entry, out, run)
             if c.summary is not None and c.summary.skipped_checkpoints:
                 log.warning("trial %s: %s", c.trial, "; ".join(c.summary.skipped_checkpoints))
         return pause
@@ -602,8 +654,9 @@ class SearchDriver:
         base = {"t": c.trial, "a": c.attempt, "cpu": self.spec.resources.cpus * max(0.0, ran), "el": self.elapsed}
         if s is None:
             if c.lost is not None:
-                return {"e": "lost", **base, "why": c.lost}
-            self.files.record_failure(c.trial, run.rung, c.attempt, "RungwayTaskError", c.crashed or "", "", run.node)
+                return {"e": "lost", **base, "why": c.lost, "counted": True}
+            self.files.record_failure(c.trial, run.rung, c.attempt, c.error_type or "RungwayTaskError", c.crashed or "", "",
+                                      c.node or run.node)
             return {"e": "crash", **base, "why": c.crashed or ""}
         if s.outcome == "result":
             advanced = run.target_budget - min(run.start_budget, float(s.checkpoint_budget or 0))
@@ -620,6 +673,37 @@ class SearchDriver:
             self.files.record_failure(s.trial, s.rung, s.attempt, s.error_type or "Error", s.reason or "", s.traceback or "", s.node)
             return {"e": "crash", **base, "why": s.reason or ""}
         return {"e": "lost", **base, "why": f"storage: {s.reason}"}
+
+    def _trial_failed(self, entry: dict[str, Any], out: Failed, run: _Running) -> None:
+        """A trial failed for good. A crash's record was written before its entry; a trial lost
+        once too often gets its record here (losses are not failures until then)."""
+        if entry["e"] == "lost":
+            self.files.record_failure(out.trial, run.rung, entry["a"], "Lost", f"{out.reason}; the last time: {entry.get('why', '')}",
+                                      "", run.node)
+            log.warning("trial %s failed: %s (limits.max_losses = %s)", out.trial, out.reason, self.plan.max_losses)
+        else:
+            log.warning("trial %s failed after %s crashes: %s", out.trial, self.plan.max_crashes + 1, entry.get("why"))
+
+    def _stop_if_failing(self) -> bool:
+        """End the run when the core says the search can only fail."""
+        why = self.core.failing
+        if why is None:
+            return False
+        if self.report.failing is None:
+            log.warning("search %s is failing: %s; stopping", self.spec.name, why)
+        self.report.failing = why
+        self.over = True
+        return True
+
+    def first_failure(self) -> str | None:
+        """The search's first recorded failure (``failures/``), as one line."""
+        frame = self.files.read_failures()
+        if frame.empty:
+            return None
+        row = frame.sort_values("recorded_at", kind="stable").iloc[0]
+        message = str(row["message"])
+        text = message if message.startswith(str(row["error_type"])) else f"{row['error_type']}: {message}"
+        return f"trial {int(row['trial'])} attempt {int(row['attempt'])}: {text}"
 
     def _apply_stopping_results(self, s: SegmentSummary) -> None:
         trial = self.core.trial(s.trial)
@@ -687,14 +771,19 @@ class SearchDriver:
                 del self.running[(run.trial, run.attempt)]
                 if kind == "crash":
                     self.files.record_failure(run.trial, run.rung, run.attempt, "Hang", why, "", run.node)
-                entries.append(({"e": kind, "t": run.trial, "a": run.attempt, "why": why,
-                                 "cpu": self.spec.resources.cpus * (now - run.submitted), "el": self.elapsed}, run))
+                entry = {"e": kind, "t": run.trial, "a": run.attempt, "why": why,
+                         "cpu": self.spec.resources.cpus * (now - run.submitted), "el": self.elapsed}
+                if kind == "lost":
+                    entry["counted"] = True
+                entries.append((entry, run))
                 log.warning("trial %s attempt %s: %s; %s", run.trial, run.attempt, why,
-                            "requeued" if kind == "lost" else "counted as a crash")
+                            "counted as a loss" if kind == "lost" else "counted as a crash")
             for entry, run in entries:
-                self._log(entry)
+                out = self._log(entry)
                 self._ended(run, entry)
                 self._count_node_failure(run.node)
+                if isinstance(out, Failed):
+                    self._trial_failed(entry, out, run)
         for node, until in list(self.quarantined.items()):
             if until <= now:
                 del self.quarantined[node]

@@ -1,9 +1,11 @@
 """Where segments run: the seam between the head's loop and Ray.
 
 :class:`RayExecutor` submits each segment as a Ray task with the trial's resources and turns
-whatever comes back into a :class:`Completion`: the worker's summary, or a *loss* when Ray
-reports that the machine, the worker process or the object is gone. That translation is done
-here and nowhere else. :class:`InlineExecutor` runs segments in the calling process for tests
+whatever comes back into a :class:`Completion`: the worker's summary, a *loss* when Ray
+reports that the machine or the object is gone, or a *crash* when the worker process died on
+a machine that is still alive (an exit, a signal, an OOM kill: the trial's doing). Which of
+the two a dead worker is depends on its node: the control store (``ray.nodes()``) is asked
+whether the node the segment ran on is dead. That translation is done here and nowhere else. :class:`InlineExecutor` runs segments in the calling process for tests
 and for a head without Ray.
 """
 
@@ -32,7 +34,9 @@ class Completion:
     attempt: int
     summary: SegmentSummary | None = None
     lost: str | None = None
-    crashed: str | None = None  # our own task failed outside the runner (a rungway bug)
+    crashed: str | None = None  # the worker process died (or our own task failed outside the runner)
+    error_type: str | None = None  # for a crash: what Ray reported (WorkerCrashedError, ...)
+    node: str = ""  # the node the segment ran on, when known
 
 
 class Executor(Protocol):
@@ -155,35 +159,43 @@ class InlinePool:
 
 
 def classify_ray_error(exc: BaseException) -> tuple[str, str]:
-    """("lost" | "crashed", reason) for an exception Ray raised when fetching a result.
+    """("lost" | "died" | "crashed", reason) for an exception Ray raised when fetching a result.
 
-    Lost: the machine, the worker process, the object or its owner went away, or the task
-    was cancelled by us; none of it is the trial's fault. Crashed: anything else (a bug in
-    rungway's own task code, or the worker killed for exceeding its memory).
+    Lost: the machine (its raylet) died, or the object or its owner went away; not the trial's
+    fault. Died: the worker process died while running the segment (an ``os._exit``, a signal,
+    Ray's memory monitor or the kernel's OOM killer, a cancellation we did not ask for): the
+    trial's crash if its node is alive, which the caller checks. Crashed: anything else (a bug
+    in rungway's own task code).
+
+    What Ray 2.60 says: ``WorkerCrashedError`` carries no exit code or signal (the raylet logs
+    them, and its worker table cannot tell ``os._exit(1)`` from SIGKILL); ``OutOfMemoryError``
+    carries the memory monitor's message; a node that dies mid-task gives ``NodeDiedError``
+    at once, while ``ray.nodes()`` marks it dead only after its missed health checks.
     """
     import ray.exceptions as rx
 
-    lost_types: tuple[type[BaseException], ...] = tuple(
-        t
-        for t in (
-            getattr(rx, "NodeDiedError", None),
-            getattr(rx, "WorkerCrashedError", None),
-            getattr(rx, "LocalRayletDiedError", None),
-            getattr(rx, "ObjectLostError", None),
-            getattr(rx, "OwnerDiedError", None),
-            getattr(rx, "ObjectReconstructionFailedError", None),
-            getattr(rx, "RayActorError", None),
-            getattr(rx, "ActorDiedError", None),
-            getattr(rx, "TaskCancelledError", None),
-            getattr(rx, "RaySystemError", None),
-        )
-        if isinstance(t, type)
+    def kinds(*names: str) -> tuple[type[BaseException], ...]:
+        return tuple(t for t in (getattr(rx, name, None) for name in names) if isinstance(t, type))
+
+    name = type(exc).__name__
+    first = str(exc).splitlines()[0] if str(exc) else ""
+    if isinstance(exc, kinds("OutOfMemoryError")):
+        return "died", f"OutOfMemoryError: the worker was killed by Ray's memory monitor: {exc}"
+    if isinstance(exc, kinds("WorkerCrashedError")):
+        return "died", ("WorkerCrashedError: the worker process died while running the segment "
+                        "(os._exit, a signal such as SIGKILL or SIGSEGV, or the kernel's OOM killer; "
+                        "Ray reports no exit code: see the raylet's message in the head's log)")
+    if isinstance(exc, kinds("TaskCancelledError")):
+        # The head cancels only segments it has given up on (their answers are dropped), so a
+        # cancellation that arrives here was not ours: KeyboardInterrupt out of the worker, say.
+        return "died", f"TaskCancelledError: the segment's task was cancelled: {first or 'no reason given'}"
+    lost_types = kinds(
+        "NodeDiedError", "LocalRayletDiedError", "ObjectLostError", "OwnerDiedError",
+        "ObjectReconstructionFailedError", "RayActorError", "ActorDiedError", "RaySystemError",
     )
-    if isinstance(exc, getattr(rx, "OutOfMemoryError", ())):
-        return "crashed", f"worker killed for memory: {exc}"
     if isinstance(exc, lost_types):
-        return "lost", f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}"
-    return "crashed", f"{type(exc).__name__}: {exc}"
+        return "lost", f"{name}: {first}"
+    return "crashed", f"{name}: {exc}"
 
 
 class RayPool:
@@ -217,6 +229,7 @@ class RayPool:
         self._drained_at = 0.0
         self._dead: set[str] = set()
         self._dead_checked = 0.0
+        self._nodes: dict[tuple[str, int, int], str] = {}  # the node each running segment beat from
         self.lanes: dict[str, RayLane] = {}
 
     def _start_relay(self) -> Any:
@@ -286,14 +299,28 @@ class RayPool:
             summaries: list[Any] | None = self._ray.get(ready)
         except Exception:
             summaries = None
+        dead: tuple[set[str], set[str]] | None = None  # the control store is asked at most once per poll
+        asked = False
         for i, ref in enumerate(ready):
             search, trial, attempt = self._refs.pop(ref)
             self._by_key.pop((search, trial, attempt), None)
+            node = self._nodes.pop((search, trial, attempt), "")
             try:
                 done = Completion(trial, attempt, summary=summaries[i] if summaries is not None else self._ray.get(ref))
             except Exception as exc:  # translated right here, the one place that knows Ray
                 kind, reason = classify_ray_error(exc)
-                done = Completion(trial, attempt, lost=reason) if kind == "lost" else Completion(trial, attempt, crashed=reason)
+                if kind == "died":
+                    if not asked:
+                        dead, asked = self._dead_now(), True
+                    if self._node_is_dead(node, dead):
+                        where = f"node {node[:12] or '(unknown)'}"
+                        kind, reason = "lost", (f"{where} died: {reason}" if dead is not None else
+                                                f"Ray did not say whether {where} lives: {reason}")
+                if kind == "lost":
+                    done = Completion(trial, attempt, lost=reason, node=node)
+                else:
+                    done = Completion(trial, attempt, crashed=reason, node=node,
+                                      error_type=type(exc).__name__ if kind == "died" else None)
             lane = self.lanes.get(search)
             if lane is not None:
                 lane.inbox.append(done)
@@ -330,6 +357,8 @@ class RayPool:
                 if lane is not None:
                     lane.milestones.append((trial, attempt, rung, value))
             for (search, trial, attempt), post in result["beats"].items():
+                if post[1] and (search, trial, attempt) in self._by_key:
+                    self._nodes[(search, trial, attempt)] = post[1]
                 lane = self.lanes.get(search)
                 if lane is not None:
                     lane.beats[(trial, attempt)] = post
@@ -349,6 +378,31 @@ class RayPool:
             self._dead_checked = now
         return self._dead
 
+    def _dead_now(self) -> tuple[set[str], set[str]] | None:
+        """(dead nodes as the control store says now, dead nodes as it said before), or None
+        when it does not answer."""
+        before = self._dead
+        try:
+            self._dead = {n["NodeID"] for n in self._ray.nodes() if not n.get("Alive", False)}
+        except Exception as exc:  # the control store is down or unreachable
+            log.warning("cannot ask Ray which nodes are alive (%s: %s)", type(exc).__name__, exc)
+            return None
+        self._dead_checked = time.monotonic()
+        return self._dead, before
+
+    @staticmethod
+    def _node_is_dead(node: str, dead: tuple[set[str], set[str]] | None) -> bool:
+        """Whether a dead worker's node is dead too. When in doubt the trial gets the benefit
+        of it (a loss, which ``max_losses`` still bounds): the control store did not answer, or
+        the node is unknown (the segment died before its first heartbeat reached the head) and
+        some node died since the last look."""
+        if dead is None:
+            return True
+        now, before = dead
+        if node:
+            return node in now
+        return bool(now - before)
+
     def _set_avoid(self, search: str, nodes: set[str]) -> None:
         if nodes:
             self._avoid_by_lane[search] = frozenset(nodes)
@@ -365,6 +419,7 @@ class RayPool:
             self._ray.cancel(ref, force=True)
         self._refs.clear()
         self._by_key.clear()
+        self._nodes.clear()
         try:
             self._ray.kill(self._relay)
         except Exception:  # already gone with its node, or Ray is shutting down

@@ -221,6 +221,10 @@ class LabHead:
             files = self.store.search(spec.name)
             if files.read_spec() is not None:
                 raise NameTaken(f"the store already holds a search named {spec.name!r}; give yours another name")
+            twin = self.store.case_twin(spec.name)
+            if twin is not None:
+                raise NameTaken(f"the store already holds a search named {twin!r}, which differs from {spec.name!r} "
+                                "only in letter case; give yours another name")
             s = _Search(spec.name, team, priority, self.wall(), spec, spec_text)
             # Journaled first: a head killed between the two has a submission whose spec is
             # missing (skipped at restart, the name free again), never a spec nobody owns.
@@ -440,6 +444,10 @@ class LabHead:
                 reason = report.paused_reason if report is not None else "its state could not be written"
                 self._set_state(s, "faulted", reason)
                 log.warning("search %s stopped: %s", s.name, reason)
+            elif report.failing:  # it could only fail: faulted, with why and its first failure
+                reason = f"failing: {report.failing}; first failure: {report.first_failure or 'none recorded'}"
+                self._set_state(s, "faulted", reason)
+                log.warning("search %s stopped: %s", s.name, reason)
             else:
                 self._set_state(s, "finished", None)
                 log.info("search %s finished (%d segments)", s.name, report.segments)
@@ -628,7 +636,7 @@ class LabHead:
             if s.spec is None:
                 return {}
             try:
-                d = SearchDriver(s.spec, s.spec_text, self.store_root, InlineExecutor(0.0))
+                d = SearchDriver(s.spec, s.spec_text, self.store_root, InlineExecutor(0.0), lease=False)
             except Exception as exc:  # noqa: BLE001 (shown as the search's reason, never a 500)
                 log.warning("search %s: cannot read its state: %s", s.name, exc)
                 if s.reason is None:

@@ -19,6 +19,11 @@ there are :data:`BLOCK_FAN_IN` of them, so the number of files stays small.
 A row is charged to the period in which its segment *ended*; rows carry no key that must be
 unique (a segment may be charged in several rows), so nothing is ever de-duplicated by value.
 See ``docs/storage.md``, "The CPU ledger", for the columns.
+
+Every file is named after the SHA-256 of its bytes (``part-<sha>.parquet``, the store's
+:mod:`~rungway.scheduler.store.checksums`) and checked whenever it is read, so a damaged file
+is a ``StorageCorrupt`` naming it, never a changed sum. A block's list of sources is believed
+for deleting its leftovers only once the block itself has been checked.
 """
 
 from __future__ import annotations
@@ -26,7 +31,6 @@ from __future__ import annotations
 import json
 import math
 import posixpath
-import uuid
 from collections.abc import Iterable, Sequence
 from dataclasses import asdict, dataclass
 from typing import Any
@@ -35,8 +39,9 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.dataset as ds
 
+from rungway.scheduler.store.checksums import check_named, parquet_bytes, sha256_hex
 from rungway.scheduler.store.errors import InvalidRows, StorageCorrupt, StorageError
-from rungway.scheduler.store.fs import Volume, resolve_root, translate
+from rungway.scheduler.store.fs import Volume, resolve_root
 from rungway.scheduler.store.schemas import rows_to_table
 
 __all__ = [
@@ -170,15 +175,32 @@ def _sources(schema: pa.Schema, path: str) -> list[tuple[str, int]]:
         raise StorageCorrupt(f"{path} has an unreadable source list ({exc}); move it aside", path=path) from exc
 
 
-def _check_required(table: pa.Table, folder: str) -> None:
-    # A dataset read fills a column a file lacks with nulls: only a foreign file does that.
-    for name in set(_REQUIRED) & set(table.schema.names):
-        if table[name].null_count:
+def _conform(table: pa.Table, path: str) -> pa.Table:
+    """One file's rows with the ledger's columns, in order; a file without them is foreign."""
+    folder = posixpath.dirname(path)
+    for name in _REQUIRED:
+        if name not in table.schema.names or table[name].null_count:
             raise StorageCorrupt(
-                f"a file under {folder} lacks ledger column {name!r}; move files that are not "
-                "rungway's out of the ledger folder",
-                path=folder,
+                f"a file under {folder} lacks ledger column {name!r} ({posixpath.basename(path)}); move files "
+                "that are not rungway's out of the ledger folder",
+                path=path,
             )
+    columns = [table[f.name] if f.name in table.schema.names else pa.nulls(table.num_rows, f.type)
+               for f in LEDGER_SCHEMA]
+    try:
+        return pa.Table.from_arrays(columns, names=LEDGER_SCHEMA.names).cast(LEDGER_SCHEMA)
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError) as exc:
+        raise StorageCorrupt(f"{path} has ledger columns of other types ({exc}); move it out of {folder}",
+                             path=path) from None
+
+
+def _check_file(path: str, data: bytes) -> None:
+    """Raise StorageCorrupt if a ledger file's bytes do not match the checksum in its name."""
+    name = posixpath.basename(path)
+    held = "the segments charged in every part it merged" if name.startswith(_BLOCK) else "the segments it charged"
+    check_named(path, data, f"move it out of {posixpath.dirname(path)}/ and the ledger goes on without "
+                            f"{held}: usage reports and allowances no longer count them, and nothing is "
+                            "counted twice")
 
 
 class Ledger:
@@ -191,7 +213,7 @@ class Ledger:
     def __init__(self, root: str) -> None:
         self.root = root
         fs, base = resolve_root(root)
-        self.volume = Volume(fs)
+        self.volume = Volume(fs, check=_check_file)
         self.folder = posixpath.join(base, LEDGER_DIR)
 
     def __repr__(self) -> str:
@@ -204,10 +226,14 @@ class Ledger:
         so a bad one (``InvalidRows``, naming the column) writes nothing."""
         table = rows_to_table(_check(rows), LEDGER_SCHEMA)
         if table.num_rows:
-            self.volume.write_table(self._path(_PART), table)
+            self._write(_PART, table)
 
-    def _path(self, prefix: str) -> str:
-        return posixpath.join(self.folder, f"{prefix}{uuid.uuid4().hex[:16]}{_PARQUET}")
+    def _write(self, prefix: str, table: pa.Table) -> str:
+        """Write ``table`` as one file named after its bytes' SHA-256; returns the name."""
+        data = parquet_bytes(table)
+        name = f"{prefix}{sha256_hex(data)[:32]}{_PARQUET}"
+        self.volume.write_bytes(posixpath.join(self.folder, name), data)
+        return name
 
     # -- reading ----------------------------------------------------------------------------
 
@@ -305,37 +331,27 @@ class Ledger:
         return listing
 
     def _read(self, listing: _Listing, where: Any, columns: list[str] | None) -> list[pa.Table] | None:
-        """The rows of the live files; None when one vanished (a compaction), to list again."""
-        whole = listing.parts + [name for name, ranges in listing.blocks if ranges is None]
-        paths = [posixpath.join(self.folder, name) for name in whole]
+        """The rows of the live files; None when one vanished (a compaction), to list again.
+
+        Each file is read whole in one request and checked (:func:`_check_file`) before its
+        rows count."""
         tables: list[pa.Table] = []
-        try:
-            if paths:
-                # One dataset over all the files reads them on pyarrow's threads: with
-                # thousands of small parts, that is what keeps a read fast.
-                dataset = ds.dataset(paths, schema=LEDGER_SCHEMA, format="parquet", filesystem=self.volume.fs)
-                tables.append(dataset.to_table(columns=columns, filter=where))
-            for name, ranges in listing.blocks:
-                if ranges is not None:
-                    table = self.volume.read_table(posixpath.join(self.folder, name))
-                    if table is None:
-                        return None
-                    tables.append(self._slice(table, ranges, where, columns))
-        except (OSError, pa.ArrowException) as exc:
-            if any(not self.volume.exists(p) for p in paths):
+        for name, ranges in [(name, None) for name in listing.parts] + listing.blocks:
+            table = self.volume.read_table(posixpath.join(self.folder, name))
+            if table is None:
                 return None
-            raise translate(exc, self.folder, "reading the ledger in") from exc
-        for table in tables:
-            _check_required(table, self.folder)
+            tables.append(self._slice(table, posixpath.join(self.folder, name), ranges, where, columns))
         return tables
 
     @staticmethod
-    def _slice(table: pa.Table, ranges: list[tuple[int, int]], where: Any, columns: list[str] | None) -> pa.Table:
-        table = table.replace_schema_metadata(None).cast(LEDGER_SCHEMA)
-        pieces = [table.slice(start, rows) for start, rows in ranges]
-        table = pa.concat_tables(pieces) if pieces else LEDGER_SCHEMA.empty_table()
+    def _slice(table: pa.Table, path: str, ranges: list[tuple[int, int]] | None, where: Any,
+               columns: list[str] | None) -> pa.Table:
+        table = _conform(table, path)
+        if ranges is not None:
+            pieces = [table.slice(start, rows) for start, rows in ranges]
+            table = pa.concat_tables(pieces) if pieces else LEDGER_SCHEMA.empty_table()
         if where is not None:
-            table = ds.dataset(table).to_table(filter=where)
+            table = table.filter(where)
         return table.select(columns) if columns is not None else table
 
     # -- compaction -------------------------------------------------------------------------
@@ -353,7 +369,14 @@ class Ledger:
             raise ValueError(f"min_parts must be an int >= 1, got {min_parts!r}")
         listing = self._listing()
         # Leftovers go first: once a block becomes a source of a newer block and is deleted,
-        # nothing may remain that only it says is covered.
+        # nothing may remain that only it says is covered. They go on the blocks' word, so the
+        # blocks are checked first (a damaged one stops the compaction, naming it).
+        if listing.leftovers:
+            for name, _ in listing.blocks:
+                path = posixpath.join(self.folder, name)
+                data = self.volume.read_bytes(path)
+                if data is not None:
+                    _check_file(path, data)
         removed = self._delete(listing.leftovers)
         if len(listing.parts) < min_parts:
             return removed
@@ -368,37 +391,24 @@ class Ledger:
         tables: list[pa.Table] = []
         held: list[tuple[str, int]] = []
         for name, ranges in blocks:
-            table = self.volume.read_table(posixpath.join(self.folder, name))
+            path = posixpath.join(self.folder, name)
+            table = self.volume.read_table(path)
             if table is not None:  # else another compactor took it: its block holds the rows
-                table = self._slice(table, [(0, table.num_rows)] if ranges is None else ranges, None, None)
+                table = self._slice(table, path, ranges, None, None)
                 tables.append(table)
                 held.append((name, table.num_rows))
-        paths = [posixpath.join(self.folder, name) for name in parts]
-        try:
-            by_path = self._read_each(paths)
-        except (OSError, pa.ArrowException) as exc:
-            if any(not self.volume.exists(p) for p in paths):
+        for name in parts:
+            path = posixpath.join(self.folder, name)
+            table = self.volume.read_table(path)
+            if table is None:
                 return []  # another compaction is taking these parts; leave them to it
-            raise translate(exc, self.folder, "compacting the ledger in") from exc
-        for name, path in zip(parts, paths):
-            tables.append(by_path[path])
-            held.append((name, by_path[path].num_rows))
+            tables.append(self._slice(table, path, None, None, None))
+            held.append((name, tables[-1].num_rows))
         if not held:
             return []
-        table = pa.concat_tables(tables)
-        _check_required(table, self.folder)
-        table = table.replace_schema_metadata({SOURCES_KEY: json.dumps(held).encode()})
-        self.volume.write_table(self._path(_BLOCK), table)
+        table = pa.concat_tables(tables).replace_schema_metadata({SOURCES_KEY: json.dumps(held).encode()})
+        self._write(_BLOCK, table)
         return [name for name, _ in held]
-
-    def _read_each(self, paths: Sequence[str]) -> dict[str, pa.Table]:
-        """Each file's rows, read on pyarrow's threads (batches are tagged with their file)."""
-        batches: dict[str, list[pa.RecordBatch]] = {path: [] for path in paths}
-        if paths:
-            dataset = ds.dataset(list(paths), schema=LEDGER_SCHEMA, format="parquet", filesystem=self.volume.fs)
-            for tagged in dataset.scanner().scan_batches():
-                batches[tagged.fragment.path].append(tagged.record_batch)
-        return {path: pa.Table.from_batches(found, schema=LEDGER_SCHEMA) for path, found in batches.items()}
 
     def _delete(self, names: Iterable[str]) -> int:
         return sum(self.volume.delete(posixpath.join(self.folder, name)) for name in names)

@@ -21,7 +21,8 @@ operation:
 - Node failures: each live worker fails after an exponential time (rate
   ``failure_rate_per_hour``). Its running segments are reported lost (``core.lost``) after
   ``requeue_delay`` seconds (the head noticing), and the worker comes back after
-  ``repair_seconds``. A requeued segment runs again from the trial's last saved budget.
+  ``repair_seconds``. A requeued segment runs again from the trial's last saved budget; as
+  with the real head, a trial lost more than ``plan.max_losses`` times fails.
 - Limits as the real driver applies them: after ``admit_until`` simulated seconds or
   ``max_cpu_hours`` of finished segments, the core is told to start no new trials.
 

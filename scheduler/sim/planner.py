@@ -261,7 +261,7 @@ def plan_search(
         notes.append(
             f"node failures: {failure_rate_per_hour:g} per worker per hour; a lost segment is requeued "
             f"{requeue_delay:g} s later and runs again (from the trial's last result, or from 0 for the plain "
-            f"form); a node is back after "
+            f"form; a trial lost more than limits.max_losses times fails); a node is back after "
             f"{repair_seconds:g} s")
     if spec.sampler.kind != "random":
         notes.append(f"the {spec.sampler.kind} sampler runs for real, on simulated results")

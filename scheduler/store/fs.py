@@ -151,10 +151,13 @@ def _fsync_dir(folder: str) -> None:
 class Volume:
     """A pyarrow file system plus the few operations the store needs, fault-translated."""
 
-    def __init__(self, fs: pafs.FileSystem) -> None:
+    def __init__(self, fs: pafs.FileSystem, check: Callable[[str, bytes], object] | None = None) -> None:
         self.fs = fs
         # Local (and NFS-mounted) paths go through os so that fsync is available.
         self.local = isinstance(fs, pafs.LocalFileSystem)
+        # Sees every Parquet file's bytes before they are parsed, and raises StorageCorrupt if
+        # they are damaged (the store's and the ledger's checksums).
+        self.check = check
 
     # -- writing -------------------------------------------------------------------------
 
@@ -241,7 +244,17 @@ class Volume:
 
         Read with ``ParquetFile`` rather than ``pq.read_table``: the same table and schema
         metadata, without building a one-file dataset, which costs more than reading a small
-        part file itself (compaction and full reads go through hundreds of them)."""
+        part file itself (compaction and full reads go through hundreds of them).
+
+        With a ``check``, the whole file is read in one request and checked before it is parsed."""
+        if self.check is not None:
+            data = self.read_bytes(path)
+            if data is None:
+                return None
+            self.check(path, data)
+            with _faults(path, "reading", reading=True):
+                with pq.ParquetFile(pa.BufferReader(data)) as parquet:
+                    return parquet.read()
         with _faults(path, "reading", reading=True):
             try:
                 with self.fs.open_input_file(path) as source, pq.ParquetFile(source) as parquet:

@@ -4,17 +4,20 @@
 
     <root>/searches/<name>/
         spec.toml                                   the search spec, as the user wrote it
+        spec.toml.sha256                            "<sha256 hex>  spec.toml\n"
         trials.parquet                              one row per trial (replaced whole)
-        measurements/part-t<T>-r<R>-a<A>-<hex>.parquet   one per write (one trial segment)
-        measurements/part-batch-n<N>-<hex>.parquet       the head's batch of N segments' final rows
-        measurements/block-<n>-<hex>.parquet        compacted parts
+        measurements/part-t<T>-r<R>-a<A>-<sha>.parquet   one per write (one trial segment)
+        measurements/part-batch-n<N>-<sha>.parquet       the head's batch of N segments' final rows
+        measurements/block-<n>-<sha>.parquet        compacted parts
         checkpoints/<T>/<budget>-<attempt>.ckpt     opaque bytes
         checkpoints/<T>/<budget>-<attempt>.ckpt.sha256   "<hex digest>  <file name>\\n"
-        failures/fail-t<T>-r<R>-a<A>-<hex>.parquet  one row per failed attempt
+        failures/fail-t<T>-r<R>-a<A>-<sha>.parquet  one row per failed attempt
         journal/                                    reserved for the head's journal
 
-Names embed the writer's identity plus a random token so that two writers never pick the
-same name, without any coordination.
+Names embed the writer's identity plus the first 32 hex digits of the SHA-256 of the file's
+bytes (``<sha>``, see :mod:`.checksums`), so that two writers never pick the same name without
+any coordination, and a reader can check the bytes. Files written before checksums have an
+8-digit random token there instead.
 """
 
 from __future__ import annotations
@@ -26,6 +29,8 @@ import uuid
 from dataclasses import dataclass
 
 from rungway.scheduler.core.errors import SpecError
+
+from .checksums import NAME_DIGITS
 
 __all__ = [
     "SEARCH_NAME",
@@ -66,6 +71,11 @@ def searches_dir(base: str) -> str:
 def token() -> str:
     """A short random token that keeps concurrently written names apart."""
     return uuid.uuid4().hex[:8]
+
+
+def _tag(digest: str | None) -> str:
+    """What keeps names apart: the file's digest digits (a random token if none is given)."""
+    return digest[:NAME_DIGITS] if digest else token()
 
 
 def budget_text(budget: float) -> str:
@@ -118,6 +128,11 @@ class SearchLayout:
         return posixpath.join(self.base, "spec.toml")
 
     @property
+    def spec_checksum(self) -> str:
+        """``spec.toml``'s SHA-256, in ``sha256sum`` format (written before the spec)."""
+        return self.spec + ".sha256"
+
+    @property
     def trials(self) -> str:
         return posixpath.join(self.base, "trials.parquet")
 
@@ -138,17 +153,17 @@ class SearchLayout:
         """Reserved for the head's journal; the store never writes here."""
         return posixpath.join(self.base, "journal")
 
-    def part(self, trial: int, rung: int, attempt: int) -> str:
-        """A fresh, collision-free name for one measurements part file."""
-        return posixpath.join(self.measurements, f"{PART_PREFIX}t{trial}-r{rung}-a{attempt}-{token()}{PARQUET}")
+    def part(self, trial: int, rung: int, attempt: int, digest: str | None = None) -> str:
+        """The name of one measurements part file whose bytes hash to ``digest``."""
+        return posixpath.join(self.measurements, f"{PART_PREFIX}t{trial}-r{rung}-a{attempt}-{_tag(digest)}{PARQUET}")
 
-    def batch_part(self, segments: int) -> str:
-        """A fresh name for a part file holding the final rows of several segments."""
-        return posixpath.join(self.measurements, f"{PART_PREFIX}batch-n{segments}-{token()}{PARQUET}")
+    def batch_part(self, segments: int, digest: str | None = None) -> str:
+        """The name of a part file holding the final rows of several segments."""
+        return posixpath.join(self.measurements, f"{PART_PREFIX}batch-n{segments}-{_tag(digest)}{PARQUET}")
 
-    def block(self, number: int) -> str:
-        """A fresh name for compacted block ``number``; the token keeps two compactors apart."""
-        return posixpath.join(self.measurements, f"{BLOCK_PREFIX}{number:06d}-{token()}{PARQUET}")
+    def block(self, number: int, digest: str | None = None) -> str:
+        """The name of compacted block ``number``; the digest keeps two compactors apart."""
+        return posixpath.join(self.measurements, f"{BLOCK_PREFIX}{number:06d}-{_tag(digest)}{PARQUET}")
 
     def trial_checkpoints(self, trial: int) -> str:
         return posixpath.join(self.checkpoints, str(int(trial)))
@@ -161,8 +176,12 @@ class SearchLayout:
         """The sidecar that holds ``checkpoint_path``'s SHA-256."""
         return checkpoint_path + ".sha256"
 
-    def failure(self, trial: int, rung: int, attempt: int) -> str:
-        return posixpath.join(self.failures, f"fail-t{trial}-r{rung}-a{attempt}-{token()}{PARQUET}")
+    def failure(self, trial: int, rung: int, attempt: int, digest: str | None = None) -> str:
+        return posixpath.join(self.failures, f"fail-t{trial}-r{rung}-a{attempt}-{_tag(digest)}{PARQUET}")
+
+    def label(self, path: str) -> str:
+        """``path``'s place as checksums name it: ``<search name>/<path in the search folder>``."""
+        return posixpath.relpath(path, posixpath.dirname(self.base))
 
 
 def is_part(file_name: str) -> bool:

@@ -29,7 +29,9 @@ from collections.abc import Callable
 
 import pandas as pd
 import pyarrow as pa
+import pyarrow.parquet as pq
 
+from . import checksums
 from .errors import StorageCorrupt
 from .fs import Volume
 from .layout import SEARCH_NAME, SearchLayout, searches_dir
@@ -40,7 +42,7 @@ __all__ = ["STORE_FORMAT", "FORMAT_FILE", "RENAMED_IN_FORMAT_2", "open_store", "
 
 log = logging.getLogger(__name__)
 
-STORE_FORMAT = 2
+STORE_FORMAT = 3
 """The format this rungway writes."""
 
 FORMAT_FILE = "store-format.json"
@@ -134,7 +136,47 @@ def _to_2(volume: Volume, base: str) -> None:
         _trials_to_2(volume, layout, bool(higher))
 
 
-_STEPS: dict[int, Callable[[Volume, str], None]] = {2: _to_2}
+# -- format 2 -> 3: checksums -----------------------------------------------------------------
+
+_HEAD_STATE = "head-state.json"  # the head's snapshot (head.driver.HEAD_STATE), under journal/
+
+
+def _to_3(volume: Volume, base: str) -> None:
+    """Give each search's files of a fixed name their checksum (:mod:`.checksums`): the spec its
+    ``spec.toml.sha256``, the trials table and the head's snapshot their embedded digest. A file
+    that has one is left as it is; each change is one atomic write. Nothing else is rewritten:
+    parts, blocks, failure records and the CPU ledger keep their names (read unverified), and
+    the head's old journal files (``events-<n>.jsonl``, read unverified) are deleted at its next
+    snapshot. What a file holds now is what its checksum vouches for from here on."""
+    for name in volume.list_dirs(searches_dir(base)):
+        if SEARCH_NAME.fullmatch(name) is None:
+            continue
+        layout = SearchLayout(f"{searches_dir(base)}/{name}")
+        spec = volume.read_bytes(layout.spec)
+        if spec is not None and not volume.exists(layout.spec_checksum):
+            volume.write_bytes(layout.spec_checksum,
+                               checksums.sidecar_text([checksums.sha256_hex(spec)], posixpath.basename(layout.spec)))
+        trials = volume.read_bytes(layout.trials)
+        if trials is not None:
+            try:
+                parquet = pq.ParquetFile(pa.BufferReader(trials))
+                if checksums.EMBEDDED_KEY not in (parquet.metadata.metadata or {}):
+                    table = parquet.read()
+                    volume.write_bytes(layout.trials, checksums.sealed_parquet_bytes(table, layout.label(layout.trials)))
+            except (pa.ArrowException, OSError) as exc:  # left as it is: reading it says what is wrong
+                log.warning("%s cannot be read (%s); it stays without a checksum", layout.trials, exc)
+        state_path = posixpath.join(layout.journal, _HEAD_STATE)
+        state = volume.read_bytes(state_path)
+        if state is not None and not state.startswith(b'{"sha256":'):
+            try:
+                sealed = checksums.seal_json(state.decode("utf-8"), layout.label(state_path))
+            except ValueError as exc:  # left as it is: the head says what is wrong with it
+                log.warning("%s cannot be read (%s); it stays without a checksum", state_path, exc)
+            else:
+                volume.write_bytes(state_path, sealed)
+
+
+_STEPS: dict[int, Callable[[Volume, str], None]] = {2: _to_2, 3: _to_3}
 """Step N brings a store of format N-1 to format N."""
 
 

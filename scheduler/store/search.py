@@ -15,7 +15,8 @@ from typing import Any
 import pandas as pd
 import pyarrow.fs as pafs
 
-from . import checkpoints, tables
+from . import checkpoints, checksums, tables
+from .errors import StorageCorrupt
 from .checkpoints import CheckpointInfo, LoadedCheckpoint
 from .fs import Volume, resolve_root
 from .layout import SEARCH_NAME, SearchLayout, searches_dir, validate_search_name
@@ -29,7 +30,7 @@ class Store:
     def __init__(self, root: str) -> None:
         self.root = root
         fs, self.base = resolve_root(root)
-        self.volume = Volume(fs)
+        self.volume = Volume(fs, check=tables.check_file)
 
     @property
     def filesystem(self) -> pafs.FileSystem:
@@ -45,6 +46,12 @@ class Store:
         """Names of the searches that have a folder under this root, sorted."""
         names = self.volume.list_dirs(searches_dir(self.base))
         return [name for name in names if SEARCH_NAME.fullmatch(name)]
+
+    def case_twin(self, name: str) -> str | None:
+        """A search already here whose name differs from ``name`` only in letter case: the two
+        would share one folder on a case-insensitive file system (macOS, Windows shares)."""
+        folded = name.casefold()
+        return next((n for n in self.list_searches() if n != name and n.casefold() == folded), None)
 
     def __repr__(self) -> str:
         return f"Store({self.root!r})"
@@ -76,26 +83,63 @@ class SearchFiles:
     # -- spec -----------------------------------------------------------------------------
 
     def write_spec(self, text: str) -> None:
-        """Keep the spec text as written, so the search can be resumed and audited."""
+        """Keep the spec text as written, so the search can be resumed and audited; its SHA-256
+        goes first into ``spec.toml.sha256`` (:mod:`.checksums`)."""
         if not isinstance(text, str):
             raise TypeError(f"spec text must be str, got {type(text).__name__}")
-        self._volume.write_bytes(self.layout.spec, text.encode("utf-8"))
+        path, sidecar = self.layout.spec, self.layout.spec_checksum
+        data = text.encode("utf-8")
+        digests = [checksums.sha256_hex(data)]
+        current = self._volume.read_bytes(path)
+        if current is not None and checksums.sha256_hex(current) != digests[0]:
+            digests.append(checksums.sha256_hex(current))  # until the new text is in place
+        name = posixpath.basename(path)
+        self._volume.write_bytes(sidecar, checksums.sidecar_text(digests, name))
+        self._volume.write_bytes(path, data)
+        if len(digests) > 1:
+            self._volume.write_bytes(sidecar, checksums.sidecar_text(digests[:1], name))
 
     def read_spec(self) -> str | None:
-        """The stored spec text, or None if none was written."""
-        data = self._volume.read_bytes(self.layout.spec)
-        return None if data is None else data.decode("utf-8")
+        """The stored spec text as written, or None if none was written. A spec that does not
+        match its checksum is a :class:`~.errors.StorageCorrupt`."""
+        path, sidecar = self.layout.spec, self.layout.spec_checksum
+        data = self._volume.read_bytes(path)
+        if data is None:
+            return None
+        listed = self._volume.read_bytes(sidecar)
+        remedy = (f"Put back the spec it was submitted with (the same text) at {path}, then resume the search; "
+                  f"if this text is right after all, delete {sidecar} to have it read unchecked")
+        if listed is not None:  # else a spec written before checksums: read as it is
+            digests = checksums.sidecar_digests(listed, posixpath.basename(path))
+            if digests is None:
+                raise StorageCorrupt(f"{sidecar}, the spec's checksum, is damaged; {remedy}", path=sidecar)
+            if checksums.sha256_hex(data) not in digests:
+                raise StorageCorrupt(f"{path} is damaged or was edited: it does not match its checksum in "
+                                     f"{sidecar}; {remedy}", path=path)
+        try:
+            return data.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            raise StorageCorrupt(f"{path} is not UTF-8 text ({exc}); {remedy}", path=path) from None
 
     # -- the head's state -----------------------------------------------------------------
 
     def write_head_state(self, name: str, text: str) -> None:
-        """Replace the head's state file ``journal/<name>`` atomically (the head's snapshot)."""
-        self._volume.write_bytes(self._head_path(name), text.encode("utf-8"))
+        """Replace the head's state file ``journal/<name>`` (the text of a JSON object: the head's
+        snapshot) atomically, with its checksum as the object's first member."""
+        path = self._head_path(name)
+        self._volume.write_bytes(path, checksums.seal_json(text, self.layout.label(path)))
 
     def read_head_state(self, name: str) -> str | None:
-        """The head's state file ``journal/<name>``, or None if the head never wrote it."""
-        data = self._volume.read_bytes(self._head_path(name))
-        return None if data is None else data.decode("utf-8")
+        """The head's state file ``journal/<name>`` as written (checked against its checksum), or
+        None if the head never wrote it. A damaged one is a :class:`~.errors.StorageCorrupt`."""
+        path = self._head_path(name)
+        data = self._volume.read_bytes(path)
+        if data is None:
+            return None
+        remedy = ("the search's saved state is damaged, so the search cannot be resumed from it. Its "
+                  "results so far stay readable (trials.parquet, measurements/). Put back a copy of the "
+                  "file if you have one; otherwise run the spec again under another name")
+        return checksums.open_json(data, self.layout.label(path), path, remedy)
 
     def _head_path(self, name: str) -> str:
         if "/" in name or name.startswith("."):

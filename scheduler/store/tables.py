@@ -7,6 +7,11 @@ holds. That record is what makes compaction crash-safe: a part named by a block 
 skipped by readers and deleted by the next compaction, so a crash between writing the
 block and deleting its parts never shows a row twice. Reads also drop duplicate keys
 (trial, rung, attempt, seq, metric), as a second line of defence.
+
+Every file is checked when read (:mod:`.checksums`): parts, blocks and failure records are
+named after the SHA-256 of their bytes, the trials table carries its own; a damaged file is a
+``StorageCorrupt`` that says which file, what it held and what moving it aside costs.
+Compaction deletes the parts an earlier block already holds only after checking that block.
 """
 
 from __future__ import annotations
@@ -14,6 +19,7 @@ from __future__ import annotations
 import datetime as dt
 import json
 import posixpath
+import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -21,6 +27,7 @@ from typing import Any
 import pandas as pd
 import pyarrow as pa
 
+from .checksums import check_named, check_sealed_parquet, parquet_bytes, sealed_parquet_bytes, sha256_hex
 from .errors import InvalidRows, StorageCorrupt, StorageError
 from .fs import Volume
 from .layout import SearchLayout, block_number, is_block, is_part
@@ -47,6 +54,58 @@ __all__ = [
 
 MERGED_PARTS_KEY = b"rungway.merged_parts"
 _READ_TRIES = 8
+_SEGMENT_PART = re.compile(r"part-t(\d+)-r(\d+)-a(\d+)-")
+_BATCH_PART = re.compile(r"part-batch-n(\d+)-")
+
+
+def _aside(path: str) -> str:
+    folder, _ = posixpath.split(path)
+    search = posixpath.dirname(folder)
+    return f"move it out of {folder}/ (for example into {search}/damaged/) and resume the search"
+
+
+def _measurements_remedy(path: str) -> str:
+    """What moving a damaged measurements file aside costs, from what its name says it held."""
+    name = posixpath.basename(path)
+    kept = ("rung results the head already accepted stay in the journal and trials.parquet, and a "
+            "segment that had not finished when the head stopped is run again from its checkpoint, "
+            "so nothing is counted twice")
+    if (segment := _SEGMENT_PART.match(name)) is not None:
+        held = f"trial {segment[1]}'s reports at rung {segment[2]}, attempt {segment[3]}"
+    elif (batch := _BATCH_PART.match(name)) is not None:
+        held = f"the rung results of {batch[1]} segments"
+    else:
+        held = ("the rows of every part this block merged (those parts were deleted once it was written; "
+                "any still in the folder count again)")
+    return f"{_aside(path)}; the measurements table loses what it held ({held}); {kept}"
+
+
+def _check_measurements(path: str, data: bytes) -> None:
+    check_named(path, data, _measurements_remedy(path))
+
+
+def _check_failure(path: str, data: bytes) -> None:
+    check_named(path, data, f"{_aside(path)}; only that failed attempt's error record is lost "
+                            "(the trial's state is in the journal)")
+
+
+_TRIALS_REMEDY = ("move it aside: the head writes it again, from its snapshot and journal, the next time it "
+                  "runs this search (the measurements and the journal do not depend on it)")
+
+
+def check_file(path: str, data: bytes) -> None:
+    """The store's check of a Parquet file's bytes (:attr:`Volume.check`): raises StorageCorrupt,
+    saying what the file held and what to do, if they do not match their checksum."""
+    folder, name = posixpath.split(path)
+    kind = posixpath.basename(folder)
+    if name == "trials.parquet":
+        check_sealed_parquet(path, data, f"{kind}/{name}", _TRIALS_REMEDY)
+    elif kind == "measurements":
+        _check_measurements(path, data)
+    elif kind == "failures":
+        _check_failure(path, data)
+    else:
+        check_named(path, data, _aside(path))
 
 
 def _conforms(table: pa.Table, schema: pa.Schema, path: str) -> pa.Table:
@@ -75,8 +134,10 @@ def write_measurements(volume: Volume, layout: SearchLayout, rows: Sequence[Mapp
         (row["trial"], row["rung"], row["attempt"])
         for row in table.select(["trial", "rung", "attempt"]).to_pylist()
     }
-    path = layout.part(*segments.pop()) if len(segments) == 1 else layout.batch_part(len(segments))
-    volume.write_table(path, table)
+    data = parquet_bytes(table)
+    digest = sha256_hex(data)
+    path = layout.part(*segments.pop(), digest) if len(segments) == 1 else layout.batch_part(len(segments), digest)
+    volume.write_bytes(path, data)
     return path
 
 
@@ -139,13 +200,14 @@ class CompactionPlan:
     pending: list[str]  # parts no block holds yet, to merge
     leftovers: list[str]  # parts a block already holds (an earlier compaction stopped early)
     next_block: int
+    holders: list[str]  # the blocks that hold the leftovers: checked before the leftovers go
 
 
 def plan_compaction(volume: Volume, layout: SearchLayout) -> CompactionPlan:
     """List the measurements folder once and sort its parts into pending and leftovers."""
     folder = layout.measurements
     files = volume.list_files(folder)
-    covered: set[str] = set()
+    covered: dict[str, str] = {}
     numbers = [0]
     for name in files:
         number = block_number(name)
@@ -155,13 +217,24 @@ def plan_compaction(volume: Volume, layout: SearchLayout) -> CompactionPlan:
         path = posixpath.join(folder, name)
         schema = volume.read_schema(path)
         if schema is not None:
-            covered |= _merged_parts(schema, path)
+            covered.update(dict.fromkeys(_merged_parts(schema, path), name))
     parts = [name for name in files if is_part(name)]
+    leftovers = [name for name in parts if name in covered]
     return CompactionPlan(
         pending=[name for name in parts if name not in covered],
-        leftovers=[name for name in parts if name in covered],
+        leftovers=leftovers,
         next_block=max(numbers) + 1,
+        holders=sorted({covered[name] for name in leftovers}),
     )
+
+
+def _check_holders(volume: Volume, layout: SearchLayout, blocks: Sequence[str]) -> None:
+    """Check the blocks whose record makes parts leftovers: the parts are deleted on their word."""
+    for name in blocks:
+        path = posixpath.join(layout.measurements, name)
+        data = volume.read_bytes(path)
+        if data is not None:
+            _check_measurements(path, data)
 
 
 def write_block(volume: Volume, layout: SearchLayout, parts: Sequence[str], number: int) -> tuple[str, list[str]]:
@@ -176,11 +249,12 @@ def write_block(volume: Volume, layout: SearchLayout, parts: Sequence[str], numb
             continue
         tables.append(_conforms(table, MEASUREMENTS_SCHEMA, path))
         merged.append(name)
-    block = layout.block(number)
     if not merged:
-        return block, []
+        return layout.block(number), []
     table = pa.concat_tables(tables).replace_schema_metadata({MERGED_PARTS_KEY: json.dumps(merged).encode()})
-    volume.write_table(block, table)
+    data = parquet_bytes(table)
+    block = layout.block(number, sha256_hex(data))
+    volume.write_bytes(block, data)
     return block, merged
 
 
@@ -199,6 +273,7 @@ def compact_measurements(volume: Volume, layout: SearchLayout, min_parts: int = 
     if isinstance(min_parts, bool) or not isinstance(min_parts, int) or min_parts < 1:
         raise ValueError(f"min_parts must be an int >= 1, got {min_parts!r}")
     plan = plan_compaction(volume, layout)
+    _check_holders(volume, layout, plan.holders)
     removed = delete_parts(volume, layout, plan.leftovers)
     if len(plan.pending) >= min_parts:
         _, merged = write_block(volume, layout, plan.pending, plan.next_block)
@@ -217,7 +292,8 @@ def write_trials(
     trials = table.column("trial").to_pylist()
     if len(set(trials)) != len(trials):
         raise InvalidRows("each trial appears once in the trials table", column="trial")
-    volume.write_table(layout.trials, table)
+    label = layout.label(layout.trials)
+    volume.write_with(layout.trials, lambda out: out.write(sealed_parquet_bytes(table, label)))
 
 
 def read_trials(volume: Volume, layout: SearchLayout) -> pd.DataFrame:
@@ -262,9 +338,9 @@ def record_failure(
         "node": node,
         "recorded_at": dt.datetime.now(dt.timezone.utc),
     }
-    table = rows_to_table([row], FAILURES_SCHEMA)
-    path = layout.failure(trial, rung, attempt)
-    volume.write_table(path, table)
+    data = parquet_bytes(rows_to_table([row], FAILURES_SCHEMA))
+    path = layout.failure(trial, rung, attempt, sha256_hex(data))
+    volume.write_bytes(path, data)
     return path
 
 

@@ -102,3 +102,88 @@ def slow_resumable(ctx, honour_yield: bool = False):
 def yielding_slow(ctx):
     """``slow_resumable`` that honours a request to yield after each saved unit (preemption)."""
     return slow_resumable(ctx, honour_yield=True)
+
+
+def counted(ctx):
+    """``resumable`` that watches how many segments run at once, for the oversubscription tests.
+
+    Folder ``RUNGWAY_TEST_COUNT`` holds ``running/`` (a marker per worker process, named by its
+    pid, present from the segment's first unit until it returns), ``pids/`` (every process that
+    ran a segment) and ``counts`` (one line per unit: the pid and the markers present then).
+    Until ``RUNGWAY_TEST_MEET`` segments have been seen running together, a unit waits for them
+    (at most a minute), so that a search of many short segments does reach full width. Every
+    unit saves, reports and checks ``ctx.asked_to_yield``.
+    """
+    folder = os.environ["RUNGWAY_TEST_COUNT"]
+    meet = int(os.environ.get("RUNGWAY_TEST_MEET", "2"))
+    delay = float(os.environ.get("RUNGWAY_TEST_SLEEP", "0.02"))
+    pid = str(os.getpid())
+    running = os.path.join(folder, "running")
+    mark = os.path.join(running, pid)
+    open(os.path.join(folder, "pids", pid), "w").close()
+    x = ctx.config["x"]
+    state = ctx.state if ctx.state is not None else {"value": x, "step": 0}
+    assert state["step"] == ctx.start, (state, ctx.start)
+    try:
+        for step in range(ctx.start, ctx.budget):
+            open(mark, "w").close()
+            _count_running(folder, running, pid)
+            met = os.path.join(folder, "met")
+            give_up = time.monotonic() + 60.0
+            while not os.path.exists(met) and time.monotonic() < give_up:
+                if len(os.listdir(running)) >= meet:
+                    open(met, "w").close()
+                else:
+                    time.sleep(0.01)
+            time.sleep(delay)
+            state = {"value": math.sin(state["value"] * 1.7 + step) + 0.01 * step, "step": step + 1}
+            ctx.save(state, step + 1)
+            ctx.report(step + 1, loss=(x - 0.3) ** 2 + state["value"] / (step + 2))
+            _count_running(folder, running, pid)
+            if ctx.asked_to_yield:
+                return None
+            _count_running(folder, running, pid)
+        return {"loss": (x - 0.3) ** 2 + state["value"] / (ctx.budget + 1)}
+    finally:
+        if os.path.exists(mark):
+            os.remove(mark)
+
+
+def _count_running(folder: str, running: str, pid: str) -> None:
+    line = f"{pid} {len(os.listdir(running))}\n".encode()
+    fd = os.open(os.path.join(folder, "counts"), os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    try:
+        os.write(fd, line)  # one small O_APPEND write: lines of concurrent writers never mix
+    finally:
+        os.close(fd)
+
+
+def _busy_relay_class():
+    """The head's relay as a loaded head's is: every call a segment makes is answered
+    ``BUSY_RELAY_SECONDS`` late (an async actor, so the late answers overlap); the head's own
+    calls are answered at once."""
+    import asyncio
+
+    import ray
+
+    from rungway.workers.link import Relay
+
+    base = Relay.__ray_actor_class__
+    head_side = {"drain", "decide", "ask_to_yield", "forget"}
+
+    def late(name):
+        method = getattr(base, name)
+
+        async def call(self, *args, **kwargs):
+            await asyncio.sleep(BUSY_RELAY_SECONDS)
+            return method(self, *args, **kwargs)
+
+        call.__name__ = name
+        return call
+
+    names = [n for n, v in vars(base).items() if callable(v) and not n.startswith("_") and n not in head_side]
+    return ray.remote(num_cpus=0, max_restarts=0)(type("BusyRelay", (base,), {n: late(n) for n in names}))
+
+
+BUSY_RELAY_SECONDS = 1.0
+BusyRelay = _busy_relay_class()

@@ -92,3 +92,36 @@ def test_ctrl_c_stops_cleanly_and_the_same_command_resumes(tmp_path: Path) -> No
     for row in finals.itertuples():
         assert row.value == pytest.approx(value_at(trials.loc[row.trial, "space_x"], int(row.budget)), abs=1e-12)
     assert set(trials.index) == set(range(30))
+
+
+def test_a_second_run_of_the_same_search_is_refused_and_a_killed_one_is_taken_over(tmp_path: Path) -> None:
+    spec = tmp_path / "search.toml"
+    spec.write_text(spec_text("one-writer", objective="objectives_run:sleepy", trials=60))
+    store = tmp_path / "store"
+    command = [*RUNGWAY, "run", str(spec), "--store", str(store), "--json", "--cpus", "1"]
+    first = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                             env=env(RUNGWAY_TEST_SLEEP="2"), cwd=tmp_path, start_new_session=True)
+    trials_file = store / "searches" / "one-writer" / "trials.parquet"
+    try:
+        deadline = time.monotonic() + 300  # a bound on waiting for it to start, not a speed
+        while not (trials_file.exists() and len(pd.read_parquet(trials_file)) >= 2):
+            if time.monotonic() > deadline or first.poll() is not None:
+                first.kill()
+                pytest.fail("the first run never got going: " + first.communicate()[1])
+            time.sleep(0.3)
+
+        second = subprocess.run(command, capture_output=True, text=True, timeout=600, env=env(), cwd=tmp_path)
+        assert second.returncode != 0
+        assert f"search 'one-writer' is already being run by process {first.pid}" in second.stderr, second.stderr
+        assert "Traceback" not in second.stderr
+        assert first.poll() is None  # the refused run did not disturb the first
+    finally:
+        os.killpg(first.pid, signal.SIGKILL)  # kill -9 of the command and its embedded Ray
+        first.wait()
+
+    third = subprocess.run(command, capture_output=True, text=True, timeout=900, env=env(RUNGWAY_TEST_SLEEP="0.02"),
+                           cwd=tmp_path)
+    assert third.returncode == 0, third.stderr
+    assert json.loads(third.stdout)["trials"] == 60
+    finals = pd.read_parquet(store / "searches" / "one-writer" / "measurements").query("final")
+    assert not finals.duplicated(["trial", "rung", "metric"]).any(), "a rung result was recorded twice"

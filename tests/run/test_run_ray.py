@@ -59,7 +59,11 @@ def test_parquet_outputs_match_the_documented_schema(local_ray, tmp_path) -> Non
 
 
 def test_crashing_trials_are_retried_then_failed_and_the_search_goes_on(local_ray, tmp_path) -> None:
-    driver = run_search(spec_text("fails", objective="objectives_run:always_fails", trials=4), str(tmp_path))
+    text = spec_text("fails", objective="objectives_run:always_fails", trials=4)
+    driver = SearchDriver(parse_spec(text), text, str(tmp_path), RayExecutor())
+    report = driver.run()
+    # Every trial failed: the search ends failing, not finished (docs/scheduling.md, Failures).
+    assert not report.finished and report.failing == "every trial failed (4 of 4)"
     states = {t.state for t in driver.core.trials()}
     assert states == {"failed"}
     failures = driver.files.read_failures()

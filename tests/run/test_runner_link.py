@@ -1,6 +1,7 @@
-"""What a segment asks the head over its link. Asking whether to yield is a blocking round trip
-to the relay actor, so the runner asks only where the answer changes the outcome: a resumable
-objective that returned short of its target budget. Runs without Ray (a recording link)."""
+"""What a segment asks the head over its link. Asking whether to yield is a local read (the
+link's beat thread brings the head's answer, see workers/link.py), and the runner still asks
+only where the answer changes the outcome: a resumable objective that returned short of its
+target budget. Runs without Ray (a recording link, and the relay's class called directly)."""
 
 from __future__ import annotations
 
@@ -62,3 +63,25 @@ def test_a_resumable_segment_that_runs_on_without_a_yield_request_reports(tmp_pa
     assert summary.outcome == "result", summary
     assert summary.budget == 4
     assert link.yield_asks == 1  # the objective's first check; the runner itself did not need to
+
+
+def test_the_relay_answers_a_beat_with_the_segments_yield_request_and_its_verdicts_once() -> None:
+    """The relay's side of the mailbox, without Ray: a beat's answer is (asked to yield, the
+    verdicts decided since the last beat); a verdict is handed over once, a request to yield
+    on every beat; other segments' mail stays theirs."""
+    from rungway.workers.link import Relay
+
+    relay = Relay.__ray_actor_class__()
+    assert relay.beat("s", 1, 0, 2) == (False, {})
+    relay.milestone("s", 1, 0, 0, 0.5)
+    relay.decide([("s", 1, 0, 0, True), ("s", 2, 0, 0, False), ("t", 1, 0, 0, False)])
+    relay.ask_to_yield("s", 2, 0)
+    assert relay.beat("s", 1, 0, -1) == (False, {0: True})
+    assert relay.beat("s", 1, 0, -1) == (False, {})
+    assert relay.beat("s", 2, 0, 1) == (True, {0: False})
+    assert relay.beat("s", 2, 0, 1) == (True, {})
+    posts = relay.drain()
+    assert posts["milestones"] == [("s", 1, 0, 0, 0.5)]
+    assert posts["beats"] == {("s", 1, 0): (2, ""), ("s", 2, 0): (1, "")}  # -1 keeps the last known budget
+    relay.forget("t", 1, 0)
+    assert relay.beat("t", 1, 0, 1) == (False, {})

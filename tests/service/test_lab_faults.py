@@ -80,3 +80,26 @@ def test_an_error_while_stepping_one_search_faults_it_alone(tmp_path: Path, monk
     assert head.search("s-good").state == "finished"
     exactly_once(tmp_path, "s-good")
     head.stop()
+
+
+def test_names_that_differ_only_in_case_are_refused(tmp_path: Path) -> None:
+    from rungway.scheduler.service.errors import NameTaken
+
+    head = LabHead(config_for(tmp_path), InlinePool(cpus=2))
+    head.submit("vision", spec_text("A-Secret", trials=3))
+    with pytest.raises(NameTaken, match="'A-Secret', which differs from 'a-secret' only in letter case"):
+        head.submit("speech", spec_text("a-secret", trials=3))
+    head.stop()
+
+
+def test_a_run_whose_name_differs_only_in_case_is_refused_and_leaves_no_folder(tmp_path: Path) -> None:
+    from rungway.scheduler.core.errors import SpecError
+    from rungway.scheduler.head.executor import InlineExecutor
+    from rungway.scheduler.spec import parse_spec
+
+    first = spec_text("A-Secret", trials=3)
+    SearchDriver(parse_spec(first), first, str(tmp_path), InlineExecutor(cpus=1)).run()
+    second = spec_text("a-secret", trials=3)
+    with pytest.raises(SpecError, match="differs from 'a-secret' only in letter case"):
+        SearchDriver(parse_spec(second), second, str(tmp_path), InlineExecutor(cpus=1))
+    assert Store(str(tmp_path)).list_searches() == ["A-Secret"]

@@ -43,7 +43,8 @@ def _check_consistent(result: SimResult, plan: SearchPlan) -> None:
 
 @pytest.mark.parametrize("mode", ["asha", "asha-stopping"])
 def test_failures_requeue_and_the_search_drains(mode):
-    plan = SearchPlan(mode=mode, min_budget=1, max_budget=81, eta=3, max_trials=400)
+    # Losses uncapped (max_losses): what is checked is the bookkeeping of requeues.
+    plan = SearchPlan(mode=mode, min_budget=1, max_budget=81, eta=3, max_trials=400, max_losses=10**6)
     calm = _run(plan, 0.0)
     stormy = _run(plan, 0.5)
     for r in (calm, stormy):
@@ -57,7 +58,7 @@ def test_failures_requeue_and_the_search_drains(mode):
 
 
 def test_workers_with_several_slots_lose_all_their_segments():
-    plan = SearchPlan(mode="asha", min_budget=1, max_budget=27, eta=3, max_trials=300)
+    plan = SearchPlan(mode="asha", min_budget=1, max_budget=27, eta=3, max_trials=300, max_losses=10**6)
     result = _run(plan, 1.0, workers=8, per_worker=4, cost=HeavyTailCost(60.0, sigma=0.5))
     assert result.slots == 32
     assert result.lost > result.failures  # a failure takes down up to 4 segments at once
@@ -65,7 +66,7 @@ def test_workers_with_several_slots_lose_all_their_segments():
 
 
 def test_failures_slow_the_search_down():
-    plan = SearchPlan(mode="asha", min_budget=1, max_budget=27, eta=3, max_trials=300)
+    plan = SearchPlan(mode="asha", min_budget=1, max_budget=27, eta=3, max_trials=300, max_losses=10**6)
     calm = _run(plan, 0.0, workers=8)
     stormy = _run(plan, 2.0, workers=8)
     assert stormy.wall_seconds > calm.wall_seconds

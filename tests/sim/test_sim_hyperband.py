@@ -65,9 +65,10 @@ def test_formula_variant_gives_algorithm_1_starting_counts():
 
 
 def test_table_counts_survive_node_failures():
-    # a lost segment is requeued, not failed: every barrier still gets all of its results
+    # a lost segment is requeued, not failed (losses uncapped here): every barrier still gets
+    # all of its results
     plan = SearchPlan(mode="sync-hyperband", min_budget=1, max_budget=81, eta=3, hyperband_counts="table",
-                      iterations=2)
+                      iterations=2, max_losses=10**6)
     result = simulate(plan, CountingSampler(), 12, LinearCost(60.0), failure_rate_per_hour=1.0,
                       requeue_delay=20.0, repair_seconds=300.0, seed=5)
     assert result.drained

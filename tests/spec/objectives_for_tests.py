@@ -65,3 +65,31 @@ def raises(config: dict[str, Any], budget: int) -> float:
 
 def wrong_metric(config: dict[str, Any], budget: int) -> dict[str, float]:
     return {"acc": 0.9}
+
+
+def exits_seven(config: dict[str, Any], budget: int) -> float:
+    print("about to exit")
+    raise SystemExit(7)
+
+
+def ends_the_process(config: dict[str, Any], budget: int) -> float:
+    import os
+
+    print("chatty objective: loading data", flush=True)
+    os._exit(1)
+
+
+def killed_by_a_signal(config: dict[str, Any], budget: int) -> float:
+    import os
+    import signal
+
+    os.kill(os.getpid(), signal.SIGKILL)
+    return 0.0
+
+
+def hangs(config: dict[str, Any], budget: int) -> float:
+    import time
+
+    print("waiting for a lock that never frees", flush=True)
+    while True:
+        time.sleep(0.05)

@@ -60,3 +60,14 @@ def test_a_json_file_gets_a_hint(tmp_path: Path, capsys: pytest.CaptureFixture[s
     path.write_text(json.dumps({"name": "x", "objective": "objectives_for_tests:plain"}))
     err = run_rejects(path, tmp_path / "store", capsys)
     assert "this looks like JSON, but a spec file is TOML" in err
+
+
+def test_a_hanging_objective_meets_the_probe_time_limit(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = tmp_path / "hangs.toml"
+    path.write_text((HERE / "broken_at_first_try" / "raises.toml").read_text().replace(":raises", ":hangs"))
+    code = main(["run", str(path), "--store", str(tmp_path / "store"), "--probe-timeout", "3"])
+    captured = capsys.readouterr()
+    assert code == 2 and "did not finish a first try within 3 s" in captured.err, captured.err
+    assert "waiting for a lock that never frees" in captured.err  # its output, shown as the reason
+    assert captured.out == ""  # nothing of the objective's on the command's own output
+    assert not (tmp_path / "store" / "searches").exists()

@@ -121,7 +121,7 @@ def test_permission_denied_on_open_surfaces_as_storage_permission(
     monkeypatch.setattr(store_fs, "open", denied, raising=False)
     with pytest.raises(StoragePermission, match="make .* writable") as caught:
         files.write_spec("new\n")
-    assert caught.value.path == files.layout.spec
+    assert caught.value.path == files.layout.spec_checksum  # written first, so the first to fail
     assert isinstance(caught.value.__cause__, PermissionError)
     monkeypatch.undo()
     assert files.read_spec() == "old\n"
@@ -162,7 +162,7 @@ def test_read_only_mount_raises_storage_permission_and_reads_still_work(tmp_path
         assert files.read_measurements().empty
     finally:
         _umount(view)
-    assert listing(source / "searches" / "s") == ["spec.toml"]
+    assert listing(source / "searches" / "s") == ["spec.toml", "spec.toml.sha256"]
 
 
 def test_full_disk_raises_storage_full_and_damages_nothing(tmp_path: Path) -> None:

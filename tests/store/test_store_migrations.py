@@ -6,12 +6,15 @@ committed as written (their README says how); every test works on a copy.
 
 from __future__ import annotations
 
+import hashlib
 import json
+import re
 import shutil
 import tomllib
 from pathlib import Path
 
 import pandas as pd
+import pyarrow.parquet as pq
 import pytest
 
 from rungway.scheduler.spec import parse_spec
@@ -44,8 +47,8 @@ def test_a_format_one_store_is_migrated_on_open_and_reads_correctly(format_one: 
 
     store = open_store(str(format_one))
 
-    assert store_format(store) == STORE_FORMAT == 2
-    assert json.loads((format_one / FORMAT_FILE).read_text()) == {"format": 2}
+    assert store_format(store) == STORE_FORMAT == 3
+    assert json.loads((format_one / FORMAT_FILE).read_text()) == {"format": 3}
     assert not (format_one / migrations.MIGRATIONS_DIR / "to-2.json").exists()
     files = store.search(SEARCH)
     # The stored spec now says which values are better in the new words, and parses.
@@ -161,3 +164,79 @@ def test_an_objective_using_an_old_name_is_told_the_new_one() -> None:
         ctx.no_such_thing  # noqa: B018
     with pytest.raises(ImportError, match="rungway.workers.TrialStopped was renamed in rungway 0.2: use TrialCulled"):
         from rungway.workers import TrialStopped  # noqa: F401
+
+
+# -- format 2 -> 3: checksums -------------------------------------------------------------------
+
+SEARCH_TWO = "format-two"
+
+
+@pytest.fixture
+def format_two(tmp_path: Path) -> Path:
+    root = tmp_path / "store"
+    shutil.copytree(FIXTURES / "format-2", root)
+    return root
+
+
+def test_a_format_two_store_gets_checksums_and_its_old_files_read_as_written(format_two: Path) -> None:
+    from rungway.scheduler.head.journal import Journal
+    from rungway.scheduler.service.ledger import Ledger
+    from rungway.scheduler.store.checksums import EMBEDDED_KEY
+
+    folder = format_two / "searches" / SEARCH_TWO
+    trials = pd.read_parquet(folder / "trials.parquet")
+    rows = pd.read_parquet(folder / "measurements")
+    ledger = pd.read_parquet(format_two / "_ledger")
+    snapshot = json.loads((folder / "journal" / "head-state.json").read_text())
+    spec = (folder / "spec.toml").read_bytes()
+    assert store_format(Store(str(format_two))) == 2
+
+    files = open_store(str(format_two)).search(SEARCH_TWO)
+
+    assert json.loads((format_two / FORMAT_FILE).read_text()) == {"format": 3}
+    # The files of a fixed name carry their checksums now; their contents are what they were.
+    assert (folder / "spec.toml").read_bytes() == spec and files.read_spec() == spec.decode()
+    assert (folder / "spec.toml.sha256").read_text() == f"{hashlib.sha256(spec).hexdigest()}  spec.toml\n"
+    assert EMBEDDED_KEY in pq.read_metadata(folder / "trials.parquet").metadata
+    pd.testing.assert_frame_equal(files.read_trials(), trials)
+    assert (folder / "journal" / "head-state.json").read_text().startswith('{"sha256":"')
+    assert json.loads(files.read_head_state("head-state.json") or "") == snapshot
+    # The rest keeps its old names and reads unverified, as before.
+    key = ["trial", "rung", "attempt", "seq", "metric"]
+    expected = rows.sort_values(key).drop_duplicates(key).reset_index(drop=True)
+    pd.testing.assert_frame_equal(files.read_measurements(), expected)
+    assert files.read_failures()["trial"].tolist() == [1]
+    got = Ledger(str(format_two)).read()
+    assert len(got) == len(ledger) and got["cpu_seconds"].sum() == pytest.approx(ledger["cpu_seconds"].sum())
+    entries = list(Journal(folder / "journal").entries_after(snapshot["journal_seq"]))
+    assert entries and [e["n"] for e in entries] == list(range(snapshot["journal_seq"] + 1, entries[-1]["n"] + 1))
+    # Opening it again changes nothing.
+    before = {p: p.read_bytes() for p in sorted(format_two.rglob("*")) if p.is_file()}
+    open_store(str(format_two))
+    assert {p: p.read_bytes() for p in sorted(format_two.rglob("*")) if p.is_file()} == before
+
+
+def test_a_search_killed_by_a_format_two_head_resumes_and_finishes(format_two: Path) -> None:
+    import sys
+
+    from rungway.scheduler.head.driver import SearchDriver
+    from rungway.scheduler.head.executor import InlineExecutor
+
+    sys.path.insert(0, str(FIXTURES))  # format2_objective
+    text = (FIXTURES / "format-2.toml").read_text()
+    folder = format_two / "searches" / SEARCH_TWO
+    driver = SearchDriver(parse_spec(text), text, str(format_two), InlineExecutor(cpus=2))
+    assert driver.replayed > 0  # the old journal, lines without checksums
+    assert driver.run().finished
+    files = driver.files
+    finals = files.read_measurements()
+    finals = finals[finals["final"]]
+    assert not finals.duplicated(["trial", "rung"]).any()
+    # Ladder counts (Li et al., MLSys 2020: eta = 3, 9 trials at rung 0: 3 reach rung 1, 1 the top).
+    assert finals.groupby("rung")["trial"].nunique().tolist() == [9, 3, 1]
+    # What the new head wrote carries checksums: its journal was rotated away at the last snapshot.
+    assert not list((folder / "journal").glob("events-*"))
+    assert (folder / "journal" / "head-state.json").read_text().startswith('{"sha256":"')
+    old, new = sorted(p.name for p in (folder / "measurements").iterdir())
+    assert re.fullmatch(r"block-000001-[0-9a-f]{8}\.parquet", old)  # the old block stays, unverified
+    assert re.fullmatch(r"block-000002-[0-9a-f]{32}\.parquet", new)  # the new one is named after its bytes

@@ -55,4 +55,4 @@ def test_failed_write_on_a_non_local_file_system_leaves_no_temporary() -> None:
     with pytest.raises(RuntimeError, match="writer died"):
         store.volume.write_bytes(files.layout.spec, chunks())
     assert files.read_spec() == "old"
-    assert [path.rsplit("/", 1)[1] for path in all_files(store)] == ["spec.toml"]
+    assert [path.rsplit("/", 1)[1] for path in all_files(store)] == ["spec.toml", "spec.toml.sha256"]
