@@ -1,7 +1,8 @@
 """The ``rungway`` command: run a search, run the demo, show and export results.
 
 Exit status: 0 done, 2 a mistake in the user's input (the message says which field or file
-and what would be valid; no traceback), 3 the search paused on a storage fault, 4 the search
+and what would be valid; no traceback), 3 the search paused (a storage fault, or a
+cluster left with no CPUs for two minutes), 4 the search
 stopped as failing (every trial failed, or ``limits.max_consecutive_failures`` trials in a
 row failed at their first rung; the first recorded failure is printed; the same command tries
 again), 130 stopped by Ctrl-C (everything written so far is kept; the same command resumes).

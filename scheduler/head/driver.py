@@ -83,6 +83,7 @@ class HealthSettings:
     node_failure_limit: int = 3  # this many lost or crashed segments on a node within the window...
     node_failure_window: float = 300.0
     node_quarantine: float = 600.0  # ...keep new segments off it this long
+    no_cpus_timeout: float | None = 120.0  # work waiting and no CPU in the cluster this long: the run stops
 
 
 @dataclass(slots=True)
@@ -171,6 +172,7 @@ class SearchDriver:
         # One writer per search (store/lease.py); a read-only look (lease=False) takes none.
         self.lease = SearchLease(str(self._journal_dir().parent), spec.name) if lease else None
         if self.lease is not None:
+            self._check_fits()  # before anything is written
             self.lease.acquire()
         try:
             self.core = self._restore_or_start()
@@ -413,6 +415,7 @@ class SearchDriver:
         self._drained = False
         self._pending: list[Completion] = []  # finished segments whose results wait for the next write
         self._pending_since: float | None = None
+        self._no_cpus_since: float | None = None
         if self.core.failing is not None:  # it stopped as failing before: give it another run of trials
             log.warning("search %s stopped as failing before (%s); trying again", self.spec.name, self.core.failing)
             self._log({"e": "resume"})
@@ -463,8 +466,9 @@ class SearchDriver:
             self._commit()
             if now - self._last_health >= self.health.check_every:
                 self._check_health(now)
+                self._check_cpus(now)
                 self._last_health = now
-                if self._stop_if_failing():
+                if self.over or self._stop_if_failing():
                     return
             if self.progress is not None:
                 self.time_left.maybe_update(now, self._slots(prefetch=False))
@@ -790,6 +794,35 @@ class SearchDriver:
                 log.warning("node %s is back in scheduling", node[:12])
                 self.executor.avoid(set(self.quarantined))
 
+    def _check_fits(self) -> None:
+        """A trial that no node can hold would wait forever: refuse the search at the start."""
+        sizes = self.executor.node_sizes()
+        cpus, memory = float(self.spec.resources.cpus), int(self.spec.resources.memory_mb)
+        if not sizes or any(c >= cpus and (m is None or m >= memory) for c, m in sizes):
+            return
+        most_cpus = max(c for c, _ in sizes)
+        field = "resources.cpus" if most_cpus < cpus else "resources.memory_mb"
+        memories = [m for _, m in sizes if m is not None]
+        largest = (f"the largest node has {most_cpus:g} CPUs" if field == "resources.cpus"
+                   else f"no node with {cpus:g} CPUs has {memory} MB (the most memory on a node is {max(memories)} MB)")
+        raise SpecError(f"one trial asks for {cpus:g} CPUs and {memory} MB, but {largest} among the "
+                        f"{len(sizes)} live nodes, so no trial could ever start; lower it, or add a larger node",
+                        field=field)
+
+    def _check_cpus(self, now: float) -> None:
+        """Work waiting while the cluster has no CPU at all (its Ray is gone, or every node left):
+        after ``no_cpus_timeout`` the run stops with the reason, instead of waiting silently."""
+        timeout = self.health.no_cpus_timeout
+        if timeout is None or self.executor.capacity() > 0 or not (self.running or self.core.backlog(1)):
+            self._no_cpus_since = None
+            return
+        if self._no_cpus_since is None:
+            self._no_cpus_since = now
+        elif now - self._no_cpus_since >= timeout:
+            self.report.paused_reason = (f"the cluster has had no CPUs for {now - self._no_cpus_since:.0f}s, with "
+                                         "segments waiting (has its Ray stopped, or has every node left?)")
+            self.over = True
+
     def _count_node_failure(self, node: str) -> None:
         if not node:
             return
@@ -799,6 +832,11 @@ class SearchDriver:
         while window and now - window[0] > self.health.node_failure_window:
             window.popleft()
         if len(window) >= self.health.node_failure_limit and node not in self.quarantined:
+            others = {r.node for r in self.running.values() if r.node} | set(self.node_failures)
+            if not others - set(self.quarantined) - {node}:
+                log.warning("node %s failed %d segments in %.0fs, but it is the last node known to work: kept",
+                            node[:12], len(window), self.health.node_failure_window)
+                return
             self.quarantined[node] = now + self.health.node_quarantine
             log.warning("node %s failed %d segments in %.0fs: no new segments there for %.0fs",
                         node[:12], len(window), self.health.node_failure_window, self.health.node_quarantine)

@@ -68,6 +68,10 @@ class Executor(Protocol):
         """Ids of the nodes the cluster reports dead."""
         ...
 
+    def node_sizes(self) -> list[tuple[float, int | None]]:
+        """(CPUs, memory in MB or None if unknown) of each live node; empty when unknown."""
+        ...
+
     def avoid(self, nodes: set[str]) -> None:
         """Schedule no new segment on these nodes (they keep failing)."""
         ...
@@ -116,6 +120,9 @@ class InlineExecutor:
 
     def dead_nodes(self) -> set[str]:
         return set()
+
+    def node_sizes(self) -> list[tuple[float, int | None]]:
+        return [(self._cpus, None)]
 
     def avoid(self, nodes: set[str]) -> None:
         return None
@@ -378,6 +385,15 @@ class RayPool:
             self._dead_checked = now
         return self._dead
 
+    def node_sizes(self) -> list[tuple[float, int | None]]:
+        sizes = []
+        for node in self._ray.nodes():
+            if node.get("Alive", False):
+                resources = node.get("Resources", {})
+                memory = resources.get("memory")
+                sizes.append((float(resources.get("CPU", 0.0)), None if memory is None else int(memory // 2**20)))
+        return sizes
+
     def _dead_now(self) -> tuple[set[str], set[str]] | None:
         """(dead nodes as the control store says now, dead nodes as it said before), or None
         when it does not answer."""
@@ -479,6 +495,9 @@ class RayLane:
 
     def dead_nodes(self) -> set[str]:
         return self.pool.dead_nodes()
+
+    def node_sizes(self) -> list[tuple[float, int | None]]:
+        return self.pool.node_sizes()
 
     def avoid(self, nodes: set[str]) -> None:
         self.pool._set_avoid(self.search, nodes)

@@ -116,7 +116,7 @@ class LabHead:
         *,
         clock: Callable[[], float] = time.monotonic,
         wall: Callable[[], float] = time.time,
-        health: HealthSettings = HealthSettings(),
+        health: HealthSettings = HealthSettings(no_cpus_timeout=None),  # a lab waits for its cluster
     ) -> None:
         self.config = config
         self.store_root = config.store_root
