@@ -820,4 +820,10 @@ def check_spec(spec: SearchSpec) -> list[str]:
             "trains again from scratch to its next budget; a resumable objective (one "
             "argument, ctx) continues from its checkpoint instead"
         )
+    if objective.form == "plain" and spec.limits.hang_timeout is not None:
+        notes.append(
+            f"limits.hang_timeout: a plain objective reports only when it returns, so its {spec.limits.hang_timeout:g} s "
+            "bound each whole segment; make it longer than one training at the largest budget, or use the "
+            "resumable form, whose every ctx.report counts as progress"
+        )
     return notes

@@ -154,8 +154,9 @@ def run_segment(
                 summary.skipped_checkpoints = [f"{path}: {why}" for path, why in loaded.skipped]
             if loaded is None and order.start_budget:
                 summary.skipped_checkpoints = [
-                    f"trial {order.trial} had no readable checkpoint: restarted from budget 0 "
-                    f"instead of {order.start_budget} (see the store's warnings for what was damaged)"
+                    f"trial {order.trial} had no readable checkpoint: restarted from budget 0 instead of "
+                    f"{order.start_budget} (either its objective had not called ctx.save by then, or its checkpoints "
+                    "are damaged: the store's warnings name any damaged file)"
                 ]
     except StorageError as exc:
         return _storage_fault(summary, exc, clock, cpu_start)

@@ -71,3 +71,12 @@ def test_a_hanging_objective_meets_the_probe_time_limit(tmp_path: Path, capsys: 
     assert "waiting for a lock that never frees" in captured.err  # its output, shown as the reason
     assert captured.out == ""  # nothing of the objective's on the command's own output
     assert not (tmp_path / "store" / "searches").exists()
+
+
+def test_hang_timeout_on_a_plain_objective_is_explained() -> None:
+    from rungway.scheduler.spec import check_spec
+
+    spec = parse_spec(GOOD.replace("[resources]", "[limits]\nhang_timeout = 30\n\n[resources]"), source="s.toml")
+    notes = check_spec(spec)
+    assert any(n.startswith("limits.hang_timeout: a plain objective reports only when it returns, so its 30 s bound")
+               for n in notes), notes
