@@ -286,7 +286,7 @@ class RayPool:
             if memory_mb:
                 options["memory"] = int(memory_mb) * 1024 * 1024
             task = self._variants[(cpus, memory_mb)] = self._task.options(**options)
-        ref = task.remote(order, self.relay_name)
+        ref = task.remote(order, self.relay_name, memory_mb)
         key = (search, order.trial, order.attempt)
         self._refs[ref] = key
         self._by_key[key] = ref

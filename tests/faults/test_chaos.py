@@ -1,7 +1,9 @@
 """A bounded chaos run: 200 trials, a seeded schedule of machine kills (a node removed and a
-fresh one added) and one kill -9 of the head. Afterwards: no measurement lost, none doubled,
-every value equal to the objective's, and what was recorded is a ladder: every trial at
-rung k+1 has a result at rung k."""
+fresh one added), one kill -9 of the head, and trials whose objective ends its worker on
+every attempt (exit, SIGKILL, memory past its limit). Afterwards: no measurement lost, none
+doubled, every value equal to the objective's, what was recorded is a ladder (every trial at
+rung k+1 has a result at rung k), and every dying trial failed after exactly max_crashes + 1
+crashes, each recorded once."""
 
 from __future__ import annotations
 
@@ -20,6 +22,7 @@ import pytest
 RUN = Path(__file__).resolve().parents[1] / "run"
 sys.path.insert(0, str(RUN))
 
+from objectives_dying import chaos_fate  # noqa: E402
 from objectives_run import value_at  # noqa: E402
 from runhelpers import _worker_path, spec_text  # noqa: E402
 
@@ -46,7 +49,8 @@ def test_chaos_with_node_kills_and_a_head_kill(tmp_path: Path) -> None:
     env["PYTHONPATH"] = os.pathsep.join([str(RUN), env.get("PYTHONPATH", "")])
     env["RUNGWAY_TEST_SLEEP"] = "0.05"
     spec = tmp_path / "chaos.toml"
-    spec.write_text(spec_text("chaos", objective="objectives_run:sleepy", trials=TRIALS, max_budget=9))
+    text = spec_text("chaos", objective="objectives_dying:chaotic", trials=TRIALS, max_budget=9)
+    spec.write_text(text.replace("[resources]\ncpus = 1", "[resources]\ncpus = 1\nmemory_mb = 300"))
     store = tmp_path / "store"
     command = [*RUNGWAY, "run", str(spec), "--store", str(store), "--address", cluster.address, "--json"]
     kills: list[float] = []
@@ -89,4 +93,17 @@ def test_chaos_with_node_kills_and_a_head_kill(tmp_path: Path) -> None:
     per_rung = finals.groupby("rung")["trial"].apply(set)
     for k in range(1, int(per_rung.index.max()) + 1):
         assert per_rung[k] <= per_rung[k - 1], f"a trial reached rung {k} without a result at rung {k - 1}"
-    assert (table["status"].isin(["parked", "done"])).all()
+    fates = table["space_x"].map(chaos_fate)
+    dying, living = table[fates.notna()], table[fates.isna()]
+    assert {"exit", "signal", "memory"} <= set(fates.dropna()), "the seed gave no trial of some fate"
+    assert (living["status"].isin(["parked", "done"])).all()
+    # max_crashes = 1: two attempts crash, then the trial fails; a loss on a killed machine in
+    # between is not a crash and does not count.
+    assert (dying["status"] == "failed").all() and (dying["failures"] == 2).all(), dying[["status", "failures"]]
+    assert not set(finals["trial"]) & set(dying.index), "a dying trial has a result"
+    failures = pd.concat([pd.read_parquet(p) for p in (store / "searches" / "chaos" / "failures").glob("*.parquet")])
+    assert not failures.duplicated(["trial", "attempt"]).any(), "a failure was recorded twice"
+    crashes = failures[failures["trial"].isin(dying.index)].groupby("trial").size()
+    assert (crashes == 2).all() and set(crashes.index) == set(dying.index), crashes
+    memory = failures[failures["trial"].isin(dying.index[fates[fates.notna()] == "memory"])]
+    assert (memory["error_type"] == "MemoryError").all(), memory[["error_type", "message"]]

@@ -252,3 +252,20 @@ def test_an_objective_that_ends_its_worker_fails_its_trial_and_the_search_ends(
     assert (failures["error_type"] == error_type).all(), failures[["error_type", "message"]]
     assert failures["message"].str.startswith(message).all(), failures["message"].tolist()
     assert report.first_failure is not None and message in report.first_failure
+
+
+@pytest.mark.ray
+def test_a_segment_past_its_memory_limit_fails_its_trial_and_its_worker_lives_on(local_ray, tmp_path: Path) -> None:
+    """resources.memory_mb = 300: each attempt of a trial that asks for 2 GB meets the limit
+    (workers/ray_task.py), raises MemoryError, and the trial fails after max_crashes + 1."""
+    text = spec_text("hog", objective="objectives_dying:hogs_memory", trials=2).replace(
+        "[resources]\ncpus = 1", "[resources]\ncpus = 1\nmemory_mb = 300")
+    assert "memory_mb = 300" in text
+    driver = SearchDriver(parse_spec(text), text, str(tmp_path), RayExecutor())
+    give_up = time.monotonic() + 600  # a guard, not a timing check
+    report = driver.run(lambda: time.monotonic() > give_up)
+    assert report.failing == "every trial failed (2 of 2)"
+    assert [(t.state, t.crashes, t.losses) for t in driver.core.trials()] == [("failed", 2, 0)] * 2
+    failures = driver.files.read_failures()
+    assert len(failures) == 4 and (failures["error_type"] == "MemoryError").all(), failures
+    assert failures["message"].str.endswith("the segment went past its memory limit (resources.memory_mb = 300)").all()
