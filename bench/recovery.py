@@ -90,6 +90,9 @@ def one_run(unit_seconds: float) -> dict[str, float]:
         threading.Thread(target=kill, daemon=True).start()
         report = driver.run()
         assert report.finished
+        # Progress reaches the head with a segment's heartbeat (about one a second), so units
+        # shorter than that may end every segment before one is seen running there.
+        assert "killed" in marks, "no segment was seen past its start on the doomed node: raise --unit-seconds"
         frame = driver.files.read_measurements()
         # Work redone: budget units a victim trial reported again in a later attempt, at or below
         # how far it had got when its node died (0 when it resumed from its newest checkpoint).

@@ -74,7 +74,7 @@ def plan(size: str, figures: str) -> list[Bench]:
               what="busy fraction under heavy-tailed segments"),
         Bench("quality", "quality.py", pick([], ["--quick"], ["--smoke"]) + ["--figures", figures], ray=True,
               timeout=1800.0, what="search quality per CPU-second"),
-        Bench("recovery", "recovery.py", pick(["--repeats", "5"], ["--repeats", "2"], ["--repeats", "1", "--unit-seconds", "0.05"]),
+        Bench("recovery", "recovery.py", pick(["--repeats", "5"], ["--repeats", "2"], ["--repeats", "1", "--unit-seconds", "0.4"]),
               json_flag=False, ray=True, what="recovery from a lost node"),
         Bench("journal_replay", "journal_replay.py",
               pick(["--events", "100000", "--repeats", "5"], ["--events", "20000", "--repeats", "3"], ["--events", "2000", "--repeats", "1"]),

@@ -12,6 +12,7 @@ and for a head without Ray.
 from __future__ import annotations
 
 import logging
+import socket
 import time
 import uuid
 from collections import deque
@@ -235,6 +236,7 @@ class RayPool:
         self._drain_ref: Any = None
         self._drained_at = 0.0
         self._dead: set[str] = set()
+        self._raylets: dict[str, tuple[Any, Any]] = {}  # node id -> its raylet's (address, port)
         self._dead_checked = 0.0
         self._nodes: dict[tuple[str, int, int], str] = {}  # the node each running segment beat from
         self.lanes: dict[str, RayLane] = {}
@@ -319,7 +321,7 @@ class RayPool:
                 if kind == "died":
                     if not asked:
                         dead, asked = self._dead_now(), True
-                    if self._node_is_dead(node, dead):
+                    if self._node_is_dead(node, dead) or self._raylet_gone(node):
                         where = f"node {node[:12] or '(unknown)'}"
                         kind, reason = "lost", (f"{where} died: {reason}" if dead is not None else
                                                 f"Ray did not say whether {where} lives: {reason}")
@@ -399,12 +401,27 @@ class RayPool:
         when it does not answer."""
         before = self._dead
         try:
-            self._dead = {n["NodeID"] for n in self._ray.nodes() if not n.get("Alive", False)}
+            nodes = self._ray.nodes()
+            self._dead = {n["NodeID"] for n in nodes if not n.get("Alive", False)}
+            self._raylets = {n["NodeID"]: (n.get("NodeManagerAddress"), n.get("NodeManagerPort")) for n in nodes}
         except Exception as exc:  # the control store is down or unreachable
             log.warning("cannot ask Ray which nodes are alive (%s: %s)", type(exc).__name__, exc)
             return None
         self._dead_checked = time.monotonic()
         return self._dead, before
+
+    def _raylet_gone(self, node: str) -> bool:
+        """Whether the node's raylet refuses a connection: a machine that just died takes the
+        control store seconds of missed health checks to mark dead, while its raylet's port
+        closes at once, so a worker that died with its machine is not taken for a crash."""
+        address, port = self._raylets.get(node, (None, None))
+        if not node or not address or not port:
+            return False
+        try:
+            with socket.create_connection((address, int(port)), timeout=1.0):
+                return False
+        except OSError:  # refused, or no answer within a second: the machine is gone
+            return True
 
     @staticmethod
     def _node_is_dead(node: str, dead: tuple[set[str], set[str]] | None) -> bool:

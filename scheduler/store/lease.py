@@ -34,6 +34,7 @@ from typing import Any
 from rungway.scheduler.core.errors import RungwayError
 
 from .errors import StorageError
+from .fs import translate
 
 __all__ = ["SearchLease", "SearchInUse", "LeaseLost", "LEASE_DIR"]
 
@@ -117,7 +118,14 @@ class SearchLease:
 
     def acquire(self) -> int:
         """Take the lease (taking over one whose holder is gone); returns the fencing token.
-        Raises :class:`SearchInUse` while a live holder has it."""
+        Raises :class:`SearchInUse` while a live holder has it, :class:`StorageError` when the
+        folder cannot be written (a full disk, a read-only mount)."""
+        try:
+            return self._acquire()
+        except OSError as exc:
+            raise translate(exc, self.folder, "taking the search's lease in") from None
+
+    def _acquire(self) -> int:
         os.makedirs(self.folder, exist_ok=True)
         for _ in range(16):  # each turn wins, refuses, or lost a race for the next token
             tokens = self._tokens()
@@ -172,6 +180,8 @@ class SearchLease:
             os.utime(self._path(self.token))
         except FileNotFoundError:
             raise LeaseLost(self._lost("its lease file was removed"), path=self.folder) from None
+        except OSError as exc:
+            raise translate(exc, self._path(self.token), "renewing the search's lease") from None
         self._renewed = now
 
     def check(self) -> None:
@@ -192,8 +202,14 @@ class SearchLease:
             return
         token, self.token = self.token, None
         tmp = f"{self._path(token)}.{uuid.uuid4().hex[:8]}.tmp"
-        with open(tmp, "w") as fh:
-            json.dump({"released": True, "host": self.host, "pid": self.pid}, fh)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, self._path(token))
+        try:
+            with open(tmp, "w") as fh:
+                json.dump({"released": True, "host": self.host, "pid": self.pid}, fh)
+                fh.flush()
+                os.fsync(fh.fileno())
+            os.replace(tmp, self._path(token))
+        except OSError:
+            # The disk is full or read-only: the lease stays as it was, and this process,
+            # about to exit, is taken over as gone (same host) or after the ttl (another).
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
