@@ -37,7 +37,7 @@ import math
 import re
 import tomllib
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from os import PathLike
 from typing import Annotated, Any, Literal
 
@@ -56,6 +56,7 @@ from rungway.workers.objective import check_objective_path, load_objective
 
 from .core.errors import SpecError
 from .store.migrations import renamed
+from .core.ladder import hyperband_brackets
 from .core.plan import MODES, SearchPlan
 from .core.samplers import SAMPLERS, Sampler, make_sampler
 from .core.space import SearchSpace
@@ -473,13 +474,27 @@ class LimitsSection(BaseModel):
     """Seconds a segment may stay silent before it is cancelled."""
 
 
+MAX_QUEUED_PER_SLOT = 16.0
+
+
+def _queued_per_slot(value: Any) -> float:
+    if not _is_number(value) or not math.isfinite(value) or not 0 <= value <= MAX_QUEUED_PER_SLOT:
+        raise SpecError(f"must be a number from 0 to {MAX_QUEUED_PER_SLOT:g}: segments kept waiting in Ray's queue "
+                        f"per CPU slot, 0 for none (got {_show(value)})")
+    return float(value)
+
+
 class ResourcesSection(BaseModel):
-    """``[resources]``: what one trial needs."""
+    """``[resources]``: what one trial needs, and how many segments wait for a CPU."""
 
     model_config = _SECTION
 
     cpus: CpuCount = 1
     memory_mb: Annotated[int, _int_at_least(0)] = 0
+    queued_per_slot: Annotated[float, PlainValidator(_queued_per_slot)] = 2.0
+    """Segments submitted beyond the free CPU slots, per slot (``rungway run``): Ray starts one
+    the moment a slot frees, instead of after a round trip to the head. The lab's head uses its
+    own ``head.queued_per_slot`` instead."""
 
 
 def _check_space_table(value: Any) -> dict[str, Any]:
@@ -496,6 +511,63 @@ class _Problems(ValueError):
     def __init__(self, errors: list[tuple[SpecError, Mapping[str, str] | None]]) -> None:
         super().__init__("; ".join(str(e) for e, _ in errors))
         self.errors = errors
+
+
+def _sync_halving_trials(plan: SearchPlan, sync_trials: int | None, trials: int | None) -> SearchPlan:
+    """``plan`` with the number of trials its one bracket starts: ``ladder.sync_trials``, else
+    ``limits.trials``, else eta**top. Every trial starts at the bottom rung, so the two fields
+    are the same number; they must agree, and the number must bring a trial to the top rung
+    (rung k keeps floor(n / eta**k))."""
+    if sync_trials is not None and trials is not None and sync_trials != trials:
+        raise SpecError(
+            f"must equal ladder.sync_trials = {sync_trials} in sync-halving, where every trial starts at "
+            f"the bottom rung, so both count the trials the search starts; give one of them (got {trials})",
+            field="limits.trials",
+        )
+    budgets = plan.brackets()[0].ladder.budgets
+    top, eta = len(budgets) - 1, plan.eta
+    if sync_trials is not None:
+        n, field = sync_trials, "ladder.sync_trials"
+    elif trials is not None:
+        n, field = trials, "limits.trials"
+    else:
+        return plan  # eta**top, SearchPlan's default
+    if n < eta**top:
+        kept = ", ".join(str(n // eta**k) for k in range(top + 1))
+        raise SpecError(
+            f"must be at least eta**{top} = {eta**top} for sync-halving on this ladder: keeping floor(n / eta) "
+            f"at each rung, {n} trials leave {kept} at budgets {', '.join(f'{b:g}' for b in budgets)} and none "
+            f"reaches the top; or shorten the ladder (a larger ladder.min or ladder.early_stopping_rate, a "
+            f"smaller ladder.max) (got {n})",
+            field=field,
+        )
+    return replace(plan, sync_trials=n)
+
+
+def _sync_hyperband_trials(plan: SearchPlan, iterations: int | None, trials: int) -> SearchPlan:
+    """``plan`` with ``limits.trials`` turned into iterations: each iteration starts the
+    brackets' n_s (Li et al., JMLR 2018, Algorithm 1 or Table 1), so the trials must be a whole
+    number of iterations, and ``ladder.iterations`` times that number when it is given."""
+    counts = [b.n for b in hyperband_brackets(plan.min_budget, plan.max_budget, plan.eta, plan.hyperband_counts)]
+    each = sum(counts)
+    why = (f"sync-hyperband starts {each} trials per iteration on this ladder "
+           f"({' + '.join(map(str, counts))}, ladder.hyperband_counts = \"{plan.hyperband_counts}\")")
+    if iterations is not None:
+        if trials != iterations * each:
+            raise SpecError(
+                f"must equal ladder.iterations x {each} = {iterations * each}: {why}; set it to "
+                f"{iterations * each}, or leave out limits.trials or ladder.iterations (got {trials})",
+                field="limits.trials",
+            )
+        return plan
+    if trials % each:
+        near = sorted({m for m in (trials // each * each, (trials // each + 1) * each) if m >= each})
+        raise SpecError(
+            f"must be a whole number of iterations: {why}; use {' or '.join(map(str, near))} (which sets "
+            f"ladder.iterations), or leave it out (got {trials})",
+            field="limits.trials",
+        )
+    return replace(plan, iterations=trials // each)
 
 
 class SearchSpec(BaseModel):
@@ -574,9 +646,14 @@ class SearchSpec(BaseModel):
         return self.limits.hang_timeout
 
     def plan(self) -> SearchPlan:
-        """The ladder mode, geometry and limits as a :class:`SearchPlan`."""
+        """The ladder mode, geometry and limits as a :class:`SearchPlan`.
+
+        In the synchronous modes the schedule fixes how many trials start, so ``limits.trials``
+        must say the same number (docs/scheduling.md): in ``sync-halving`` it is the number the
+        bottom rung starts (``ladder.sync_trials`` by another name), in ``sync-hyperband`` a
+        whole number of iterations. A value the schedule cannot honour is a SpecError."""
         ladder, limits = self.ladder, self.limits
-        return SearchPlan(
+        plan = SearchPlan(
             mode=ladder.mode,  # type: ignore[arg-type]
             min_budget=ladder.min,
             max_budget=ladder.max,
@@ -591,6 +668,11 @@ class SearchSpec(BaseModel):
             iterations=ladder.iterations if ladder.iterations is not None else 1,
             hyperband_counts=ladder.hyperband_counts or "formula",  # type: ignore[arg-type]
         )
+        if plan.mode == "sync-halving":
+            return _sync_halving_trials(plan, ladder.sync_trials, limits.trials)
+        if plan.mode == "sync-hyperband" and limits.trials is not None:
+            return _sync_hyperband_trials(plan, ladder.iterations, limits.trials)
+        return plan
 
     def space(self) -> SearchSpace:
         """The checked search space of the ``[space]`` table."""

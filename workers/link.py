@@ -42,6 +42,8 @@ from typing import Any
 
 import ray
 
+from .cpu import own_thread
+
 __all__ = ["Relay", "ActorLink"]
 
 Budget = int | float
@@ -177,6 +179,7 @@ class _Beater:
 
     # ---- the beat thread ----
     def _loop(self) -> None:
+        own_thread()  # rungway's, not the objective's: never charged to a segment
         while True:
             with self.cond:
                 self.cond.wait(timeout=self._nap())

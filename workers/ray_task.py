@@ -73,7 +73,8 @@ def segment_task(order: SegmentOrder, relay_name: str | None = None, memory_mb: 
         link.start(order.trial, order.attempt)
     try:
         with memory_limit(memory_mb):
-            summary = run_segment(order, link, node=f"{node_name()}/{node_id[:8]}")
+            # This process was started by Ray for segments: its first one is charged its start-up.
+            summary = run_segment(order, link, node=f"{node_name()}/{node_id[:8]}", charge_startup=True)
         if summary.error_type == "MemoryError" and memory_mb > 0:
             summary.reason = (f"{summary.reason}: the segment went past its memory limit "
                               f"(resources.memory_mb = {memory_mb})")

@@ -30,6 +30,7 @@ from datetime import datetime, timezone
 from typing import Any, Literal, Protocol
 
 from .context import Context, TrialCulled
+from .cpu import CpuMeter
 from .objective import NOT_FINITE, Objective, interpret_result, load_objective
 
 __all__ = ["SegmentOrder", "SegmentSummary", "HeadLink", "run_segment", "node_name", "describe_error"]
@@ -74,7 +75,12 @@ class SegmentSummary:
     node: str = ""
     started: float = 0.0
     ended: float = 0.0
+    """When the segment's last write to the store was done (the worker's clock)."""
     cpu_seconds: float = 0.0
+    """CPU time of the objective's threads and child processes, checkpoint and measurement
+    I/O included (``workers/cpu.py``); on a worker process's first segment, its start-up too."""
+    startup_cpu_seconds: float = 0.0
+    """Of ``cpu_seconds``: what the worker process used before its first segment."""
     error_type: str | None = None
     traceback: str | None = None
     skipped_checkpoints: list[str] = field(default_factory=list)
@@ -131,13 +137,16 @@ def run_segment(
     node: str | None = None,
     clock: Callable[[], float] = time.time,
     yield_poll_seconds: float = 0.0,
+    charge_startup: bool = False,
 ) -> SegmentSummary:
     """Run ``order`` to its target budget and return what happened. ``node`` names the
-    machine in the measurements (default: $RUNGWAY_NODE or the host name)."""
+    machine in the measurements (default: $RUNGWAY_NODE or the host name).
+    ``charge_startup``: this process is a worker started for segments, whose first segment
+    is charged the CPU the process used before it (``workers/cpu.py``)."""
     from rungway.scheduler.store import StorageError
 
     started = clock()
-    cpu_start = time.process_time()
+    cpu_start = CpuMeter(startup=charge_startup)
     node = node or node_name()
     summary = SegmentSummary(order.trial, order.attempt, order.rung, "crashed", node=node, started=started)
     try:
@@ -230,7 +239,6 @@ def run_segment(
 
     ended = clock()
     summary.ended = ended
-    summary.cpu_seconds = time.process_time() - cpu_start
     if returned is _STOPPED:
         summary.budget = ctx.measurements[-1][0] if ctx.measurements else start
     elif objective.form == "resumable" and _short_of_target(ctx, order) and ctx.asked_to_yield:
@@ -254,6 +262,8 @@ def run_segment(
             files.record_failure(order.trial, order.rung, order.attempt, "BadResult", summary.reason, "", node)
     except StorageError as exc:
         return _storage_fault(summary, exc, clock, cpu_start)
+    summary.ended = max(ended, clock())  # the writes are the segment's too
+    _charge(summary, cpu_start)
     return summary
 
 
@@ -298,17 +308,22 @@ def describe_error(exc: BaseException) -> str:
     return f"{name}: {exc}"
 
 
-def _crash(summary: SegmentSummary, exc: BaseException, clock: Callable[[], float], cpu_start: float) -> SegmentSummary:
+def _charge(summary: SegmentSummary, cpu: CpuMeter) -> None:
+    summary.cpu_seconds = cpu.seconds()
+    summary.startup_cpu_seconds = cpu.startup_seconds
+
+
+def _crash(summary: SegmentSummary, exc: BaseException, clock: Callable[[], float], cpu_start: CpuMeter) -> SegmentSummary:
     summary.outcome = "crashed"
     summary.error_type = type(exc).__name__
     summary.reason = describe_error(exc)
     summary.traceback = traceback.format_exc()
     summary.ended = clock()
-    summary.cpu_seconds = time.process_time() - cpu_start
+    _charge(summary, cpu_start)
     return summary
 
 
-def _storage_fault(summary: SegmentSummary, exc: BaseException, clock: Callable[[], float], cpu_start: float) -> SegmentSummary:
+def _storage_fault(summary: SegmentSummary, exc: BaseException, clock: Callable[[], float], cpu_start: CpuMeter) -> SegmentSummary:
     _crash(summary, exc, clock, cpu_start)
     summary.outcome = "storage"
     return summary

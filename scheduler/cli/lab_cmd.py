@@ -172,8 +172,10 @@ def _show_list(searches: list[dict[str, Any]]) -> None:
 def _show_one(search: dict[str, Any]) -> None:
     print(f"{search['name']} ({search['team']}): {_state(search)}, priority {search['priority']}")
     print(f"  {search['metric']} ({search['better']} is better); best {_best(search) or 'none yet'}")
-    print(f"  {search['trials']} trials, {search['segments']} segments ({search['running_segments']} running), "
-          f"{search['cpus_busy']:g} CPUs busy, {_num(search['cpu_seconds'] / 3600)} CPU-hours")
+    print(f"  {search['trials']} trials, {search['segments']} segments ({search['running_segments']} running, "
+          f"{search.get('queued_segments', 0)} queued), {search['cpus_busy']:g} CPUs busy, "
+          f"{_num(search['cpu_seconds'] / 3600)} CPU-hours used, "
+          f"{_num(search.get('reserved_cpu_seconds', search['cpu_seconds']) / 3600)} reserved")
     board = search.get("leaderboard") or []
     if board:
         keys = list(dict.fromkeys(k for row in board for k in row))
@@ -191,14 +193,17 @@ def _cell(value: Any) -> Any:
 
 def _show_usage(report: dict[str, Any]) -> None:
     print(f"usage for the {report['period']} period" if report["period"] != "all" else "usage for all time")
-    _table(["TEAM", "USED CPU-HOURS", "ALLOWANCE", "GUARANTEE CPUS", "CAP CPUS", "RUNNING CPUS", "SEARCHES", "HELD"],
-           [[t["team"], _num(t["used_cpu_hours"]), _num(t["allowance_cpu_hours"]), f"{t['guarantee_cpus']:g}",
+    _table(["TEAM", "USED CPU-HOURS", "RESERVED", "ALLOWANCE", "GUARANTEE CPUS", "CAP CPUS", "RUNNING CPUS", "SEARCHES",
+            "HELD"],
+           [[t["team"], _num(t["used_cpu_hours"]), _num(t.get("reserved_cpu_hours", 0.0)), _num(t["allowance_cpu_hours"]),
+             f"{t['guarantee_cpus']:g}",
              None if t["cap_cpus"] is None else f"{t['cap_cpus']:g}", f"{t['cpus_running']:g}", t["searches"],
              "yes" if t["held"] else "no"] for t in report["teams"]])
     if report["searches"]:
         print()
-        _table(["TEAM", "SEARCH", "CPU-HOURS", "SEGMENTS"],
-               [[s["team"], s["search"], _num(s["cpu_hours"]), s["segments"]] for s in report["searches"]])
+        _table(["TEAM", "SEARCH", "CPU-HOURS", "RESERVED", "SEGMENTS"],
+               [[s["team"], s["search"], _num(s["cpu_hours"]), _num(s.get("reserved_cpu_hours", 0.0)), s["segments"]]
+                for s in report["searches"]])
 
 
 def _show_info(search: dict[str, Any]) -> None:

@@ -177,8 +177,11 @@ def _run_spec(spec_text: str, source: str, args: argparse.Namespace) -> int:
         "paused": report.paused_reason,
         "failing": report.failing,
         "first_failure": report.first_failure,
+        "limit": report.limit,
         "elapsed_seconds": round(report.elapsed, 3),
         "segments": report.segments,
+        "cpu_hours": stats.get("cpu_seconds", 0.0) / 3600,
+        "reserved_cpu_hours": stats.get("reserved_cpu_seconds", 0.0) / 3600,
         "trials": stats.get("trials", 0),
         "best": _best(driver) if driver is not None else None,
         "store": os.path.join(store_root, "searches", spec.name) if "://" not in store_root else f"{store_root}/searches/{spec.name}",
@@ -242,6 +245,10 @@ def _print_summary(summary: dict[str, Any], metric: str) -> None:
     state = ("finished" if summary["finished"] else "failing" if summary["failing"] else
              "stopped" if summary["interrupted"] else "paused")
     print(f"search {summary['search']} {state} after {summary['elapsed_seconds']:.1f}s: {summary['trials']} trials, {summary['segments']} segments")
+    if summary.get("limit"):
+        print(f"stopped by its limit: {summary['limit']}")
+    print(f"CPU: {summary['cpu_hours']:.4g} CPU-hours used (the objective's CPU time), "
+          f"{summary['reserved_cpu_hours']:.4g} reserved (CPUs x wall time)")
     if summary["failing"]:
         print(f"failing: {summary['failing']}")
         print(f"first failure: {summary['first_failure'] or 'none recorded'}")
@@ -309,14 +316,32 @@ def cmd_show(args: argparse.Namespace) -> int:
     states = stats["states"]
     print(f"search {spec.name}: {stats['trials']} trials ({', '.join(f'{k} {v}' for k, v in states.items() if v)})")
     print(f"metric {spec.metric} ({spec.better} is better); {spec.ladder.unit} from {spec.ladder.min} to {spec.ladder.max}, eta {spec.ladder.eta}, mode {spec.ladder.mode}")
-    for index, bracket in enumerate(stats["brackets"]):
-        label = f"bracket {index}: " if len(stats["brackets"]) > 1 else ""
+    print(_usage_line(spec, meta, stats))
+    if meta.get("ended_by"):
+        print(f"stopped by its limit: {meta['ended_by']}")
+    from rungway.scheduler.core.plan import bracket_name
+
+    for bracket in stats["brackets"]:
+        # Named by Li et al.'s s (docs/scheduling.md): s = s_max starts at the minimum budget.
+        label = f"{bracket_name(bracket['s'], bracket.get('iteration'))}: " if len(stats["brackets"]) > 1 else ""
         print("  " + label + " | ".join(f"{r['budget']:g}: {r['results']} results, {r['promoted']} promoted" for r in bracket["rungs"]))
     print(f"\n{'rank':>4} {'trial':>6} {'state':<9} {spec.ladder.unit:>8} {spec.metric:>12}  configuration")
     for rank, row in enumerate(board, 1):
         value = "n/a" if row["value"] is None else f"{row['value']:.6g}"
         print(f"{rank:>4} {row['trial']:>6} {row['state']:<9} {row['budget']:>8g} {value:>12}  {json.dumps(row['config'], default=_plain)}")
     return 0
+
+
+def _usage_line(spec: Any, meta: dict[str, Any], stats: dict[str, Any]) -> str:
+    """Segments running and queued at the last snapshot, and CPU time used against the limit
+    (a snapshot written before both CPU figures were kept: its cpu_seconds was the reservation)."""
+    cpu = float(meta.get("cpu_seconds", 0.0))
+    reserved = float(meta.get("reserved_cpu_seconds", cpu))
+    limit = spec.limits.cpu_hours
+    of = f" of limits.cpu_hours = {limit:g}" if limit is not None else ""
+    return (f"{meta.get('running', 0)} running, {meta.get('queued', 0)} queued (at the last snapshot); "
+            f"{stats.get('segments', meta.get('segments', 0))} segments; CPU {cpu / 3600:.4g}{of} CPU-hours used "
+            f"(CPU time), {reserved / 3600:.4g} reserved (CPUs x wall time)")
 
 
 def cmd_list(args: argparse.Namespace) -> int:

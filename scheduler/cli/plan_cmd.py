@@ -97,6 +97,7 @@ def _run(args: argparse.Namespace) -> int:
     spec = load_spec(args.spec)
     cost = None
     fitted_from = None
+    cpu_per_reserved = None
     if getattr(args, "from_search", None):
         if getattr(args, "seconds_per_unit", None) is not None:
             raise SpecError("give either --from-search or --seconds-per-unit, not both", field="--seconds-per-unit")
@@ -115,16 +116,32 @@ def _run(args: argparse.Namespace) -> int:
             raise SpecError(f"no search named {args.from_search!r} in {args.store} (searches there: {known})",
                             field="--from-search")
         fitted_from = files.read_measurements()
+        cpu_per_reserved = _cpu_per_reserved(files)
     elif getattr(args, "seconds_per_unit", None) is not None:
         cost = LinearCost(args.seconds_per_unit, getattr(args, "overhead_seconds", 0.0) or 0.0)
     estimate = plan_search(
         spec, args.workers, cpus_per_worker=getattr(args, "cpus_per_worker", 1.0),
         quota_cpus=getattr(args, "quota_cpus", None), cost=cost, fitted_from=fitted_from,
         repeats=getattr(args, "repeats", 20), seed=getattr(args, "seed", 0),
-        failure_rate_per_hour=getattr(args, "failures_per_hour", 0.0),
+        failure_rate_per_hour=getattr(args, "failures_per_hour", 0.0), cpu_per_reserved=cpu_per_reserved,
     )
     if getattr(args, "json", False):
         print(json.dumps(estimate.to_dict(), indent=2))
     else:
         print(estimate.format())
     return 0
+
+
+def _cpu_per_reserved(files: Any) -> float | None:
+    """The CPU time a finished search's segments used per CPU-second they reserved (its head's
+    snapshot keeps both), or None when it does not say (a search run before both were kept)."""
+    from rungway.scheduler.head.driver import HEAD_STATE
+
+    state = files.read_head_state(HEAD_STATE)
+    if state is None:
+        return None
+    meta = json.loads(state).get("meta", {})
+    reserved = meta.get("reserved_cpu_seconds")
+    if not reserved or reserved <= 0:
+        return None
+    return float(meta.get("cpu_seconds", 0.0)) / float(reserved)

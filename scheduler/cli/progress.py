@@ -6,7 +6,9 @@ import sys
 import time
 from typing import Any, TextIO
 
-__all__ = ["ProgressView", "format_seconds", "render"]
+from rungway.scheduler.core.plan import bracket_name
+
+__all__ = ["ProgressView", "cpu_text", "format_seconds", "render"]
 
 
 def format_seconds(seconds: float | None) -> str:
@@ -23,13 +25,16 @@ def render(stats: dict[str, Any]) -> list[str]:
     best = stats.get("best")
     best_text = "none yet" if best is None else f"{best['value']:.6g} (trial {best['trial']}, {stats['unit']} {best['budget']})"
     states = stats["states"]
+    # Segments waiting in Ray's queue for a slot (resources.queued_per_slot) are not running.
+    running = stats.get("segments_running", states["active"])
+    queued = stats.get("segments_queued", 0)
     lines = [
-        f"{stats['search']}: {stats['trials']} trials, {states['active']} running, {states['done']} at the top, "
+        f"{stats['search']}: {stats['trials']} trials, {running} running, {queued} queued, {states['done']} at the top, "
         f"{states['failed']} failed | {stats['cpus_busy']:g}/{stats['cpus_total']:g} CPUs busy",
         f"  best {stats['metric']} ({stats['better']} is better): {best_text}",
     ]
-    for index, bracket in enumerate(stats["brackets"]):
-        prefix = f"  bracket {index} " if len(stats["brackets"]) > 1 else "  "
+    for bracket in stats["brackets"]:
+        prefix = f"  {bracket_name(bracket['s'], bracket.get('iteration'))} " if len(stats["brackets"]) > 1 else "  "
         cells = [
             f"{r['budget']:g}: {r['results']} done, {r['running']} running, {r['promoted']} promoted"
             for r in bracket["rungs"]
@@ -37,8 +42,20 @@ def render(stats: dict[str, Any]) -> list[str]:
         lines.append(prefix + "rungs  " + " | ".join(cells))
     lines.append(
         f"  elapsed {format_seconds(stats['elapsed'])}, about {format_seconds(stats.get('eta_seconds'))} left"
+        + cpu_text(stats)
     )
     return lines
+
+
+def cpu_text(stats: dict[str, Any]) -> str:
+    """``" | CPU 0.0123 of 0.1 CPU-hours used, 0.015 reserved"``: the CPU time the segments used
+    (what limits.cpu_hours counts) and what they reserved; empty before anything is charged."""
+    if "cpu_seconds" not in stats:
+        return ""
+    limit = (stats.get("limits") or {}).get("cpu_hours")
+    of = f" of {limit['limit']:g}" if limit else ""
+    return (f" | CPU {stats['cpu_seconds'] / 3600:.4g}{of} CPU-hours used, "
+            f"{stats.get('reserved_cpu_seconds', stats['cpu_seconds']) / 3600:.4g} reserved")
 
 
 class ProgressView:

@@ -12,7 +12,7 @@ from typing import Any, Literal, get_args
 from .errors import SpecError
 from .ladder import Budget, HyperbandVariant, Ladder, hyperband_brackets
 
-__all__ = ["Mode", "MODES", "SearchPlan", "BracketPlan"]
+__all__ = ["Mode", "MODES", "SearchPlan", "BracketPlan", "bracket_name"]
 
 Mode = Literal["asha", "asha-stopping", "sync-halving", "hyperband", "sync-hyperband", "full-budget"]
 MODES: tuple[str, ...] = get_args(Mode)
@@ -29,6 +29,23 @@ class BracketPlan:
     level_offset: int = 0
     """Rung k of this ladder has budget min_budget * eta**(level_offset + k): the *level* of a
     rung, comparable across brackets (samplers learn per level)."""
+    weight: int = 1
+    """Asynchronous Hyperband deals new trials to its brackets in proportion to their weights:
+    n_s = ceil((s_max + 1) / (s + 1) * eta**s), the trials bracket s starts in Li et al.'s
+    Algorithm 1 (JMLR 2018)."""
+
+    @property
+    def s(self) -> int:
+        """The bracket's index s as Li et al. (JMLR 2018) number it: its number of rungs minus
+        one, so s = s_max is the most exploratory bracket (it starts at the minimum budget)
+        and s = 0 runs every trial straight to the maximum."""
+        return self.ladder.top
+
+
+def bracket_name(s: int, iteration: int | None = None) -> str:
+    """How every surface (``show``, ``plan``, the live view) names a bracket: by Li et al.'s s,
+    and, when ``sync-hyperband`` repeats its brackets, by its iteration (from 1)."""
+    return f"bracket s={s}" if iteration is None else f"iteration {iteration} bracket s={s}"
 
 
 @dataclass(frozen=True)
@@ -41,7 +58,7 @@ class SearchPlan:
       1/eta at a rung); for objectives that cannot checkpoint.
     - ``sync-halving``: successive halving with a barrier at every rung; deterministic.
     - ``hyperband``: asynchronous Hyperband, ASHA brackets for every early-stopping rate,
-      new trials dealt to the brackets in turn.
+      new trials dealt to the brackets in proportion to Li et al.'s n_s (see ``weight``).
     - ``sync-hyperband``: Hyperband as Li et al. (JMLR 2018) write it, brackets one after the
       other, each a synchronous successive halving; ``iterations`` repeats the whole loop.
     - ``full-budget``: every trial straight to max_budget (random search as a baseline).
@@ -103,7 +120,7 @@ class SearchPlan:
         if len(brackets) < 2:
             Ladder(r, big_r, eta)  # raises the ladder's own message
         if self.mode == "hyperband":
-            return [BracketPlan(b.ladder, level_offset=b.ladder.early_stopping_rate) for b in brackets]
+            return [BracketPlan(b.ladder, level_offset=b.ladder.early_stopping_rate, weight=b.n) for b in brackets]
         plans = [BracketPlan(b.ladder, b.counts, b.ladder.early_stopping_rate) for b in brackets]
         return plans * self.iterations
 

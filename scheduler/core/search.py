@@ -14,6 +14,16 @@ that is in the top floor(n_k / eta) and not yet promoted; else start a new trial
 rung. Synchronous modes wait at a barrier until every trial of a rung has a result, then
 promote the top floor(n_k / eta) of them.
 
+Asynchronous Hyperband runs one such ladder per bracket. A free slot goes to a promotion if
+any bracket has one ready (the brackets are checked in turn, starting after the one that
+promoted last); else a new trial starts in the bracket the quota method picks (``_deal``):
+of the brackets whose count is below the upper quota of N + 1 trials, the one with the
+smallest (created + 1) / n_s, so after N new trials bracket s holds floor or ceil of
+N * n_s / sum(n), Li et al.'s proportions (JMLR 2018, Algorithm 1), whatever order the
+results come in. Checking for a promotion reads every bracket's K boards, O(K**2) reads for
+K = s_max + 1 brackets, and the pick is one pass over the brackets, O(K): both independent of
+the number of trials (K is log_eta(R / r) + 1).
+
 Cost, for K rungs and n results per rung (see ranking.py for the boards). Each promotion
 board keeps ASHA's answer for its rung up to date as results arrive and leave, so scanning the
 rungs on a free slot is one read per rung, O(K); a promotion then costs the board's heap pop,
@@ -167,14 +177,30 @@ class SearchCore:
         observe = sampler.observe
         self._observe = None if getattr(observe, "__func__", None) is Sampler.observe else observe
         promoting = not plan.synchronous and not plan.stopping
+        plans = plan.brackets()
         self._brackets = [
-            _Bracket(bp.ladder.budgets, bp.level_offset, bp.counts, plan.eta, promoting) for bp in plan.brackets()
+            _Bracket(bp.ladder.budgets, bp.level_offset, bp.counts, plan.eta, promoting) for bp in plans
         ]
+        # Asynchronous: the weights new trials are dealt to the brackets by (see ``_deal``), and
+        # per starting bracket the promotion boards in the order ``ask`` checks them (that
+        # bracket's top-down, then the next bracket's, wrapping) with the bracket to check first
+        # after a promotion there: one flat pass instead of a loop per bracket.
+        self._weights = tuple(bp.weight for bp in plans)
+        self._weight_total = sum(self._weights)
+        count = len(self._brackets)
+        self._scans = tuple(
+            tuple(
+                ((i + 1) % count, k, board)
+                for i in (*range(start, count), *range(start))
+                for k, board in self._brackets[i].descending
+            )
+            for start in range(count)
+        )
         self._trials: list[_Trial] = []
         self._queue: deque[int] = deque()
         self._active = 0
         self._admitting = True
-        self._cursor = 0  # asynchronous: next bracket to deal a new trial to; synchronous: bracket running
+        self._cursor = 0  # asynchronous: next bracket to check for a promotion; synchronous: bracket running
         self._streak_limit = plan.max_consecutive_failures
         self._streak = 0  # trials failed at their first rung since the last first-rung result
         self._failed = 0  # trials failed
@@ -209,26 +235,36 @@ class SearchCore:
             return self._dispatch(self._trials[self._queue.popleft()])
         if self._synchronous:
             return self._ask_synchronous()
-        brackets = self._brackets
-        count = len(brackets)
-        index = self._cursor
-        for _ in range(count):
-            following = index + 1 if index + 1 < count else 0
-            # Each board keeps its answer up to date (``ready``), so checking the rungs is a
-            # read per rung.
-            for k, board in brackets[index].descending:
-                if board.ready is not None:
-                    self._cursor = following
-                    return self._promote(board, k)
-            if self._admitting:
-                trial = self._new_trial(index)
-                if trial is not None:
-                    self._cursor = following
-                    return self._dispatch(trial)
-            index = following
+        # Each board keeps its answer up to date (``ready``), so checking the rungs is a read
+        # per rung.
+        for following, k, board in self._scans[self._cursor]:
+            if board.ready is not None:
+                self._cursor = following
+                return self._promote(board, k)
+        if self._admitting:
+            trial = self._new_trial(self._deal() if len(self._brackets) > 1 else 0)
+            if trial is not None:
+                return self._dispatch(trial)
         if self._active == 0 and not self._admitting:
             return DRAINED
         return IDLE
+
+    def _deal(self) -> int:
+        """The bracket the next new trial starts in (asynchronous Hyperband): the quota method
+        of apportionment (Balinski and Young, 1975) with the brackets' weights n_s as the
+        populations and the trials as the seats. Trial N + 1 may go to a bracket whose count
+        c is below its upper quota, c * W < (N + 1) * w (W the sum of the weights); of those,
+        it goes to the one with the smallest (c + 1) / w, the lowest index (largest s) on a
+        tie. Every count then stays within its quota, floor or ceil of N * w / W, for every
+        N. Integers only; O(number of brackets)."""
+        total = self._weight_total
+        seats = len(self._trials) + 1  # every trial was dealt to one bracket
+        best, best_next, best_weight = 0, 0, 0
+        for index, (bracket, weight) in enumerate(zip(self._brackets, self._weights)):
+            created = bracket.created
+            if created * total < seats * weight and (best_weight == 0 or (created + 1) * best_weight < best_next * weight):
+                best, best_next, best_weight = index, created + 1, weight
+        return best
 
     def _promote(self, board: PromotionBoard, k: int) -> Segment:
         trial = self._trials[board.promote()[1]]
@@ -561,11 +597,20 @@ class SearchCore:
         for t in self._trials:
             states[t.state] += 1
         brackets = []
-        for bracket in self._brackets:
+        # Brackets are named by Li et al.'s s (the number of rungs minus one: s_max is the
+        # bracket that starts at the minimum budget), and by iteration when sync-hyperband
+        # repeats them; the list index is internal.
+        repeats = self.plan.mode == "sync-hyperband" and self.plan.iterations > 1
+        per_iteration = len(self._brackets) // self.plan.iterations if repeats else 0
+        for index, bracket in enumerate(self._brackets):
             rungs = []
             for k, board in enumerate(bracket.boards):
                 rungs.append({"budget": bracket.budgets[k], "results": len(board), "promoted": board.promoted, "running": 0})
-            brackets.append({"rungs": rungs, "created": bracket.created})
+            entry: dict[str, Any] = {"s": bracket.top}
+            if per_iteration:
+                entry["iteration"] = index // per_iteration + 1
+            entry.update(rungs=rungs, created=bracket.created)
+            brackets.append(entry)
         for t in self._trials:
             if t.state == ACTIVE:
                 brackets[t.bracket]["rungs"][t.rung]["running"] += 1

@@ -15,6 +15,17 @@ stopped is settled from the store: if its result rows are there, the result is a
 (nothing is redone); otherwise it is requeued from its checkpoint. A late answer from a
 segment the head gave up on names an attempt the core no longer runs and is dropped.
 
+Accounting and limits. Each segment is charged two figures, journaled with the event that
+ended it: its CPU time (``cpu``: what its objective's threads and child processes used, as
+the worker measured it, ``workers/cpu.py``; the reservation when no worker answered) and its
+reservation (``res``: ``resources.cpus`` times the seconds it ran by the worker's clock).
+``limits.cpu_hours`` counts the first. No segment starts whose expected cost would cross a
+limit (``limits.py``): the run then lets what runs finish and ends with the final figures
+(``RunReport.limit``); at the deadline, segments still waiting in Ray (no heartbeat yet) are
+cancelled and requeued uncounted. Segments are submitted ahead of the free slots
+(``resources.queued_per_slot`` per slot, the lab's ``head.queued_per_slot`` per granted one):
+Ray starts one the moment a slot frees; the statistics tell running from queued.
+
 Storage faults end the run with a message saying what to fix (exit status 3 from the
 command); running it again, or ``--retry-storage``, resumes from the store. A search the core
 calls *failing* (too many trials in a row failed at their first rung, or every trial failed)
@@ -50,12 +61,16 @@ from rungway.workers.runner import SegmentOrder, SegmentSummary
 from .executor import Completion, Executor
 from .estimate import TimeLeft
 from .journal import Journal
+from .limits import Limits
 
 __all__ = ["SearchDriver", "RunReport", "HEAD_STATE", "HealthSettings", "SegmentListener"]
 
 log = logging.getLogger("rungway.head")
 
 HEAD_STATE = "head-state.json"
+# A running segment's first heartbeat comes within a second of its start (workers/link.py):
+# one the head has not heard from this long after submitting it is still waiting in Ray.
+_UNSTARTED_AFTER = 3.0
 
 
 @dataclass
@@ -72,6 +87,8 @@ class RunReport:
     elapsed: float = 0.0
     segments: int = 0
     statistics: dict[str, Any] = field(default_factory=dict)
+    limit: str | None = None
+    """When a limit ended the run (``finished`` is then true): which, and the final figures."""
 
 
 @dataclass(frozen=True)
@@ -98,6 +115,7 @@ class _Running:
     last_beat: float | None = None
     last_progress: float = 0.0
     progress: float = -1.0
+    first_beat: float | None = None  # when the head first heard from it running (None: queued, or inline)
 
 
 class SegmentListener(Protocol):
@@ -107,7 +125,10 @@ class SegmentListener(Protocol):
     def started(self, search: str, trial: int, attempt: int, rung: int) -> None: ...
 
     def ended(self, search: str, trial: int, attempt: int, rung: int, outcome: str, cpu_seconds: float,
-              summary: SegmentSummary | None, node: str) -> None: ...
+              summary: SegmentSummary | None, node: str, reserved_seconds: float) -> None:
+        """``cpu_seconds``: the CPU time it used; ``reserved_seconds``: ``resources.cpus`` times
+        the seconds it held them (0 for a segment that never started)."""
+        ...
 
 
 _OUTCOMES = {"rep": "result", "done": "result", "yield": "yielded", "lost": "lost", "crash": "crashed"}
@@ -127,7 +148,7 @@ class SearchDriver:
         clock: Callable[[], float] = time.monotonic,
         persist_seconds: float = 5.0,
         progress_seconds: float = 0.5,
-        prefetch: float = 2.0,
+        prefetch: float | None = None,
         flush_seconds: float = 0.02,
         health: HealthSettings = HealthSettings(),
         listener: SegmentListener | None = None,
@@ -144,9 +165,10 @@ class SearchDriver:
         self.clock = clock
         self.persist_seconds = persist_seconds
         self.progress_seconds = progress_seconds
-        # Segments submitted beyond the free slots, as a fraction of the slots: Ray queues them
-        # and starts one the moment a slot frees, so no slot waits for a round trip to the head.
-        self.prefetch = prefetch
+        # Segments submitted beyond the free slots, per slot (resources.queued_per_slot unless
+        # given): Ray queues them and starts one the moment a slot frees, so no slot waits for
+        # a round trip to the head.
+        self.prefetch = spec.resources.queued_per_slot if prefetch is None else prefetch
         # Finished segments' results are gathered for up to this long and written as one file.
         self.flush_seconds = flush_seconds
         self.health = health
@@ -154,7 +176,11 @@ class SearchDriver:
         self.plan = spec.plan()
         self.running: dict[tuple[int, int], _Running] = {}
         self.budget_done = 0.0
-        self.cpu_seconds = 0.0
+        self.cpu_seconds = 0.0  # CPU time charged (what limits.cpu_hours counts)
+        self.reserved_seconds = 0.0  # CPUs reserved x seconds held
+        self.limits = Limits(spec.limits.cpu_hours, spec.deadline_seconds, spec.limits.trials)
+        self.ended_by: str | None = None  # the limit that stopped new segments, once one did
+        self.unstarted_at_deadline = 0  # segments cancelled at the deadline before they started
         self.elapsed_before = 0.0
         self.segments = 0
         self.lost_segments = 0  # segments requeued because their machine, worker or head went away
@@ -224,6 +250,9 @@ class SearchDriver:
                 meta = data.get("meta", {})
                 self.budget_done = meta.get("budget_done", 0.0)
                 self.cpu_seconds = meta.get("cpu_seconds", 0.0)
+                # Snapshots before both figures were kept charged the reservation as cpu_seconds.
+                self.reserved_seconds = meta.get("reserved_cpu_seconds", self.cpu_seconds)
+                self.limits.restore(meta.get("costs"))
                 self.elapsed_before = meta.get("elapsed", 0.0)
                 self.segments = meta.get("segments", 0)
                 covered = data.get("journal_seq", 0)
@@ -278,12 +307,13 @@ class SearchDriver:
         """Apply one journaled event to the core (live and in replay alike)."""
         core, kind = self.core, entry["e"]
         self.cpu_seconds += entry.get("cpu", 0.0)
+        self.reserved_seconds += entry.get("res", entry.get("cpu", 0.0))  # older entries: cpu was the reservation
         self.budget_done += entry.get("bud", 0.0)
         if not hasattr(self, "_started"):  # replaying: the journal knows how long the search ran
             self.elapsed_before = max(self.elapsed_before, entry.get("el", 0.0))
-        if kind in ("rep", "lost", "crash", "yield", "done"):
+        if kind in ("rep", "lost", "crash", "yield", "done") and not entry.get("unstarted"):
             self.segments += 1
-        if kind == "lost":
+        if kind == "lost" and not entry.get("unstarted"):
             self.lost_segments += 1
         try:
             if kind == "rep":
@@ -345,8 +375,9 @@ class SearchDriver:
                     started, ended, node = times.pop(key)
                     summary = SegmentSummary(entry["t"], entry["a"], entry["r"], "result", node=node,
                                              started=started, ended=ended)
-                    self.listener.ended(self.spec.name, entry["t"], entry["a"], entry["r"], "result",
-                                        self.spec.resources.cpus * max(0.0, ended - started), summary, node)
+                    held = self.spec.resources.cpus * max(0.0, ended - started)  # no CPU measurement survives
+                    self.listener.ended(self.spec.name, entry["t"], entry["a"], entry["r"], "result", held, summary,
+                                        node, held)
         log.info("settled %d segments of the previous head: %d results kept from the store",
                  len(orphans), sum(1 for e in entries if e["e"] == "rep"))
 
@@ -359,8 +390,13 @@ class SearchDriver:
             "lease": None if self.lease is None else self.lease.token,  # the fencing token it was written under
             "budget_done": self.budget_done,
             "cpu_seconds": self.cpu_seconds,
+            "reserved_cpu_seconds": self.reserved_seconds,
+            "costs": self.limits.state(),
             "elapsed": self.elapsed,
             "segments": self.segments,
+            "running": self.running_now()[0] if self.running else 0,
+            "queued": self.running_now()[1] if self.running else 0,
+            "ended_by": self.ended_by,
         }
         self._commit()
         seq = self.journal.seq
@@ -457,9 +493,16 @@ class SearchDriver:
                 if self._stop_if_failing():
                     return
             self._drained = self._fill(self.clock(), grant) or self._drained
-            if self._drained and not self.running and not self._pending:
+            if (self._drained or self.ended_by is not None) and not self.running and not self._pending:
                 if not self._stop_if_failing():
                     report.finished = True
+                    if self.ended_by is not None:  # a limit stopped it: say which, with the final figures
+                        report.limit = self.ended_by = self.limits.final(
+                            self.ended_by, self.cpu_seconds, self.reserved_seconds, self.elapsed)
+                        if self.unstarted_at_deadline:
+                            report.limit = self.ended_by = (f"{report.limit}; {self.unstarted_at_deadline} segment(s) "
+                                                            "that had not started were requeued for a later run")
+                        log.info("search %s: %s", self.spec.name, report.limit)
                     self.over = True
                 return
             self._relay_milestones()
@@ -514,7 +557,10 @@ class SearchDriver:
         return report
 
     def backlog(self, limit: int) -> int:
-        """Segments this search could start now (see ``SearchCore.backlog``)."""
+        """Segments this search could start now (see ``SearchCore.backlog``); none once a
+        limit has stopped it."""
+        if self.ended_by is not None:
+            return 0
         return self.core.backlog(limit)
 
     def _slots(self, prefetch: bool = True) -> int:
@@ -535,22 +581,39 @@ class SearchDriver:
         """Submit segments while slots are free (or up to ``grant``); True once the core says
         the search drained. The segments are journaled (one write) before any is submitted.
         Fills are grouped (one journal write per ``flush_seconds``) unless a CPU would
-        otherwise sit idle."""
+        otherwise sit idle. No segment starts whose expected cost would cross a limit
+        (``limits.py``): the first one refused is given back to the core, uncounted, and
+        nothing more starts in this run."""
+        deadline = self.spec.deadline_seconds
+        if deadline is not None and self.running and self.elapsed >= deadline:
+            self._cancel_unstarted(now)
+        if self.ended_by is not None:
+            return False
         if grant is not None:
-            free = grant
+            # The lab's grants, plus its queue-ahead (head.queued_per_slot) per granted segment.
+            free = grant + (math.ceil(grant * self.prefetch) if grant > 0 and self.prefetch > 0 else 0)
             if not self.running and self.core.active == 0 and self.core.backlog(1) == 0:
                 # Nothing to start and nothing running: ask once to learn whether it drained
                 # (with a backlog of 0 the core hands out no segment).
                 return isinstance(self.core.ask(), Drained)
+            slots = self._slots(prefetch=False)
+            if self.limits.blind():
+                free = min(free, grant)
         else:
             in_flight = self.executor.in_flight()
-            urgent = in_flight < self._slots(prefetch=False)
+            slots = self._slots(prefetch=False)
+            urgent = in_flight < slots
             if not urgent and now - self._last_fill < self.flush_seconds:
                 return False
             self._last_fill = now
             free = self._slots() - in_flight
+            if self.limits.blind():  # no segment's cost known yet: the first wave only
+                free = min(free, slots - in_flight)
         segments: list[Segment] = []
         drained = False
+        refused: tuple[Segment, str] | None = None
+        ahead = self.limits.ahead([(r.start_budget, r.target_budget) for r in self.running.values()]) \
+            if self.limits.any else (0, 0.0)
         while free > 0:
             out = self.core.ask()
             if isinstance(out, Drained):
@@ -558,9 +621,21 @@ class SearchDriver:
                 break
             if not isinstance(out, Segment):
                 break
+            if self.limits.any:
+                why = self.limits.refuse(float(out.start_budget), float(out.target_budget), used_cpu=self.cpu_seconds,
+                                         ahead=ahead, elapsed=self.elapsed, slots=max(1, slots))
+                if why is not None:
+                    refused = (out, why)
+                    break
+                ahead = (ahead[0] + 1, ahead[1] + self.limits.units(float(out.start_budget), float(out.target_budget)))
             segments.append(out)
             free -= 1
         self._uncommitted.extend({"e": "seg", "t": s.trial, "a": s.attempt, "r": s.rung} for s in segments)
+        if refused is not None:  # handed out by the core, never started: back to its queue, uncounted
+            seg, why = refused
+            self._uncommitted.append({"e": "seg", "t": seg.trial, "a": seg.attempt, "r": seg.rung})
+            self._log({"e": "lost", "t": seg.trial, "a": seg.attempt, "why": f"not started: {why}", "unstarted": True})
+            self._limit_reached(why)
         self._commit()  # results applied this loop and these segments, in one durable write
         for seg in segments:
             self._submit(seg)
@@ -596,7 +671,22 @@ class SearchDriver:
             if summary is not None and summary.outcome == "stopped":
                 outcome = "stopped"
             self.listener.ended(self.spec.name, run.trial, run.attempt, run.rung, outcome, entry.get("cpu", 0.0),
-                                summary, (summary.node if summary is not None else "") or run.node)
+                                summary, (summary.node if summary is not None else "") or run.node,
+                                entry.get("res", entry.get("cpu", 0.0)))
+
+    def _held(self, run: _Running, now: float) -> float:
+        """CPU-seconds a segment that never answered held: from the first heartbeat the head
+        heard (an undercount by at most a beat); nothing if it never beat (it waited in Ray's
+        queue, or ran for less than a beat)."""
+        if run.first_beat is None:
+            return 0.0
+        return self.spec.resources.cpus * max(0.0, now - run.first_beat)
+
+    def _unanswered(self, run: _Running, now: float) -> dict[str, float]:
+        """The charges of a segment whose worker never answered: its reservation, and the same
+        as its CPU time (nobody measured it)."""
+        held = self._held(run, now)
+        return {"cpu": held, "res": held}
 
     def stop_segment(self, trial: int, attempt: int, why: str) -> bool:
         """Stop one running segment now and requeue its trial from its checkpoint (a preempted
@@ -605,8 +695,7 @@ class SearchDriver:
         if run is None:
             return False
         self.executor.cancel(trial, attempt)
-        entry = {"e": "lost", "t": trial, "a": attempt, "why": why,
-                 "cpu": self.spec.resources.cpus * max(0.0, self.clock() - run.submitted), "el": self.elapsed}
+        entry = {"e": "lost", "t": trial, "a": attempt, "why": why, **self._unanswered(run, self.clock()), "el": self.elapsed}
         self._log(entry)
         self._commit()
         self._ended(run, entry)
@@ -637,6 +726,9 @@ class SearchDriver:
         for entry, c, run in entries:
             if c.summary is not None and c.summary.outcome == "result":
                 self.time_left.record(run.target_budget - run.start_budget, c.summary.ended - c.summary.started)
+            if c.summary is not None and c.summary.outcome in ("result", "stopped") and entry.get("bud", 0.0) > 0:
+                self.limits.record(run.start_budget, run.target_budget, entry["bud"], entry["cpu"],
+                                   max(0.0, c.summary.ended - c.summary.started), c.summary.checkpoint_budget)
             out = self._log(entry)
             self._ended(run, entry, c.summary)
             if entry["e"] in ("lost", "crash"):
@@ -651,11 +743,14 @@ class SearchDriver:
         """The journal entry for one completion (side records, e.g. tracebacks, written first)."""
         now = self.clock()
         s = c.summary
-        # CPU time is charged from the worker's own start and end: a prefetched segment that
-        # waited in Ray's queue used no CPU. Without an answer, the time since submission is
-        # the upper bound.
-        ran = s.ended - s.started if s is not None and s.ended >= s.started > 0 else now - run.submitted
-        base = {"t": c.trial, "a": c.attempt, "cpu": self.spec.resources.cpus * max(0.0, ran), "el": self.elapsed}
+        # CPU time as the worker measured it; the reservation from the worker's own start and
+        # end (a segment that waited in Ray's queue held no CPU). Without an answer: _unanswered.
+        if s is not None and s.ended >= s.started > 0:
+            held = self.spec.resources.cpus * (s.ended - s.started)
+            charges = {"cpu": max(0.0, float(s.cpu_seconds)), "res": held}
+        else:
+            charges = self._unanswered(run, now)
+        base = {"t": c.trial, "a": c.attempt, **charges, "el": self.elapsed}
         if s is None:
             if c.lost is not None:
                 return {"e": "lost", **base, "why": c.lost, "counted": True}
@@ -735,6 +830,8 @@ class SearchDriver:
             run.last_beat = now
             if node:
                 run.node = node
+            if run.first_beat is None:
+                run.first_beat = now
             if budget is not None and budget > run.progress:
                 run.progress, run.last_progress = float(budget), now
         milestones = posts.get("milestones", [])
@@ -843,18 +940,42 @@ class SearchDriver:
             self.executor.avoid(set(self.quarantined))
 
     def _check_limits(self) -> None:
-        if not self.core.admitting:
+        """A limit crossed (CPU time used, or the deadline): start nothing more (``_fill``
+        gives the rest of the rules, ``limits.py``)."""
+        if self.ended_by is None and self.limits.any:
+            why = self.limits.crossed(self.cpu_seconds, self.elapsed)
+            if why is not None:
+                self._limit_reached(why)
+
+    def _limit_reached(self, why: str) -> None:
+        """Start no segment from now on; the run ends once what runs has finished."""
+        if self.ended_by is not None:
             return
-        deadline = self.spec.deadline_seconds
-        reason = None
-        if deadline is not None and self.elapsed >= deadline:
-            reason = "wall-clock deadline reached"
-        cpu_hours = self.spec.limits.cpu_hours
-        if cpu_hours is not None and self.cpu_seconds >= cpu_hours * 3600:
-            reason = "CPU-hour limit reached"
-        if reason:
-            log.info("%s: starting no new trials", reason)
-            self._log({"e": "stop", "why": reason})
+        self.ended_by = why
+        log.info("search %s: %s; starting nothing more, %d segment(s) to finish", self.spec.name, why, len(self.running))
+        if self.core.admitting:
+            self._log({"e": "stop", "why": why})
+
+    def _cancel_unstarted(self, now: float) -> None:
+        """The deadline has passed: segments still waiting in Ray (no heartbeat since they were
+        submitted, ``_UNSTARTED_AFTER`` ago or more) are cancelled and requeued uncounted, so a
+        search whose segments cannot run ends with its running ones."""
+        self._limit_reached(self.limits.crossed(self.cpu_seconds, self.elapsed) or "limits.deadline reached")
+        pending = {(c.trial, c.attempt) for c in self._pending}
+        waiting = [r for key, r in self.running.items()
+                   if r.first_beat is None and key not in pending and now - r.submitted >= _UNSTARTED_AFTER]
+        for run in waiting:
+            self.executor.cancel(run.trial, run.attempt)
+            del self.running[(run.trial, run.attempt)]
+            entry = {"e": "lost", "t": run.trial, "a": run.attempt, "why": "had not started by the deadline",
+                     "cpu": 0.0, "res": 0.0, "unstarted": True, "el": self.elapsed}
+            self._log(entry)
+            self._ended(run, entry)
+        if waiting:
+            self.unstarted_at_deadline += len(waiting)
+            log.info("search %s: %d segment(s) had not started by the deadline: requeued, not counted",
+                     self.spec.name, len(waiting))
+            self._commit()
 
     def _stop_running(self) -> None:
         """Interrupted or paused: cancel what runs and requeue it (its checkpoints stay)."""
@@ -862,8 +983,8 @@ class SearchDriver:
             return
         now = self.clock()
         runs = list(self.running.values())
-        entries = [{"e": "lost", "t": r.trial, "a": r.attempt, "why": "the head stopped",
-                    "cpu": self.spec.resources.cpus * max(0.0, now - r.submitted)} for r in runs]
+        entries = [{"e": "lost", "t": r.trial, "a": r.attempt, "why": "the head stopped", **self._unanswered(r, now)}
+                   for r in runs]
         for (trial, attempt) in list(self.running):
             self.executor.cancel(trial, attempt)
         self.running.clear()
@@ -873,6 +994,16 @@ class SearchDriver:
         self._commit()
 
     # ---- reading --------------------------------------------------------------------------
+
+    def running_now(self) -> tuple[int, int]:
+        """(running, queued) of the segments submitted: those the head has heard from running,
+        or as many as the cluster has slots for, run; the rest wait in Ray's queue."""
+        in_flight = len(self.running)
+        if not in_flight:
+            return 0, 0
+        beating = sum(1 for r in self.running.values() if r.first_beat is not None)
+        running = min(in_flight, max(beating, self._slots(prefetch=False)))
+        return running, in_flight - running
 
     def statistics(self) -> dict[str, Any]:
         stats = self.core.statistics()
@@ -885,6 +1016,7 @@ class SearchDriver:
         if deadline is not None:
             left = max(0.0, deadline - elapsed)
             eta_seconds = left if eta_seconds is None else min(eta_seconds, left)
+        running, queued = self.running_now()
         stats.update(
             {
                 "search": self.spec.name,
@@ -893,11 +1025,16 @@ class SearchDriver:
                 "unit": self.spec.ladder.unit,
                 "elapsed": elapsed,
                 "eta_seconds": eta_seconds,
-                "cpus_busy": min(len(self.running) * self.spec.resources.cpus, self.executor.capacity()),
+                "cpus_busy": min(running * self.spec.resources.cpus, self.executor.capacity()),
                 "cpus_total": self.executor.capacity(),
+                "segments_running": running,
+                "segments_queued": queued,
                 "segments": self.segments,
                 "lost_segments": self.lost_segments,
                 "cpu_seconds": self.cpu_seconds,
+                "reserved_cpu_seconds": self.reserved_seconds,
+                "limits": self.limits.figures(self.cpu_seconds, self.reserved_seconds, elapsed, len(self.core)),
+                "ended_by": self.ended_by,
                 "quarantined_nodes": sorted(self.quarantined),
                 "journal_replayed": self.replayed,
             }

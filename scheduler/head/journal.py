@@ -231,9 +231,8 @@ class Journal:
 
     def _read_file(self, path: Path, covered: int = 0) -> tuple[list[tuple[int, dict[str, Any]]], int]:
         """The file's entries as (n, entry), checked, and its number of whole lines; a torn last
-        line is left out. Lines whose
-        place says they are ``covered`` by the snapshot are never replayed: damage there is
-        passed over (such a line is left out)."""
+        line is left out. A line whose place says the snapshot holds its entry (``covered``) is
+        never replayed: damage there is passed over, and the line left out."""
         try:
             data = path.read_bytes()
         except OSError as exc:
@@ -275,6 +274,7 @@ class Journal:
             entries.append((n, entry))
             expected = n + 1
         return entries, len(lines)
+
 
 def _sealed(raw: bytes, start: int) -> bool:
     """Whether a journal line matches its CRC (``start``: the CRC of the file's place and ``{``)."""

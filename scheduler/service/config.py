@@ -189,6 +189,10 @@ class HeadSection(BaseModel):
     round_seconds: Annotated[float, _number(0, above=True)] = 0.05
     """How often the sharing round runs, in seconds."""
     allowance_period: Annotated[str, PlainValidator(_check_period)] = "month"
+    queued_per_slot: Annotated[float, _number(0)] = 0.0
+    """Segments a search submits beyond each one the sharing rules grant, waiting in Ray's queue
+    for a CPU (the spec's ``resources.queued_per_slot`` is not used in the lab). 0: none, every
+    start is the sharing rules' decision; the sharing rules count a queued segment as running."""
     max_body_kb: Annotated[int, _integer(1, 1 << 20)] = 256
     log_file: Annotated[str, _text('a file path, or "" for no access log')] = ""
 
@@ -207,6 +211,8 @@ class HeadSection(BaseModel):
                 f"not {_show(self.store)}; mount it and give the mount's path",
                 field="store",
             )
+        if self.queued_per_slot > 16:
+            raise SpecError(f"must be a number from 0 to 16 (got {_show(self.queued_per_slot)})", field="queued_per_slot")
         if self.ray_address and self.ray_cpus:
             raise SpecError(
                 'only applies to an embedded Ray (ray_address = ""); a joined cluster has the '

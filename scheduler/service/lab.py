@@ -6,7 +6,10 @@ pure :class:`SharingState` decides who may start how many segments: every loop t
 it each search's demand (``SearchDriver.backlog``: what the search could start now, without
 asking its core, so nothing is committed early), plans a round, and hands each search its
 grant. Segments that start and end are reported back (``Started``/``Ended``) through the
-driver's listener, which also writes one CPU-ledger row per segment. Preemptions are carried
+driver's listener, which also writes one CPU-ledger row per segment (the CPU time it used and
+its reservation). Allowances count CPU time: whenever a segment ends, its team's usage in the
+sharing state is set to the CPU time its ended segments used this period, plus what its
+running ones have reserved so far (their CPU time is known only when they end). Preemptions are carried
 out through the relay (``ask_to_yield``); a segment still running at its deadline is stopped
 and requeued from its checkpoint.
 
@@ -134,6 +137,8 @@ class LabHead:
         self._capacity: tuple[float, int] | None = None
         self._capacity_checked = -math.inf
         self._period_began = period_start(config.head.allowance_period, wall())
+        self._period_used: dict[str, float] = {}  # CPU-seconds per team this period, ended segments
+        self._running_since: dict[str, tuple[str, float, float]] = {}  # segment -> team, cpus, started at
         self.loop_error: str | None = None
         self._want_drivers = True  # a search may need a driver opened (set on every state change)
         self._ledger_compacted = clock()
@@ -252,7 +257,10 @@ class LabHead:
                     leaderboard.append({"trial": t.id, "rung": t.rung, "budget": float(t.budget), "state": t.state,
                                         "value": None if t.loss is None else _finite(core.value_of(t.loss)),
                                         "config": t.config})
-            rungs = [dict(r, bracket=b) for b, br in enumerate(stats.get("brackets", [])) for r in br["rungs"]]
+            # A rung's bracket is Li et al.'s s (docs/scheduling.md), as `rungway show` names it.
+            rungs = [dict(r, bracket=br.get("s", len(br["rungs"]) - 1),
+                          **({"iteration": br["iteration"]} if "iteration" in br else {}))
+                     for br in stats.get("brackets", []) for r in br["rungs"]]
             return SearchDetail(**info, leaderboard=leaderboard, rungs=_jsonable(rungs),
                                 statistics=_jsonable({k: v for k, v in stats.items() if k != "brackets"}))
 
@@ -318,10 +326,12 @@ class LabHead:
                     allowance_cpu_hours=q.allowance_cpu_hours, used_cpu_hours=used.get("cpu_hours", 0.0),
                     memory_mb_hours=used.get("memory_mb_hours", 0.0),
                     cpus_running=float(stats.get(q.name, {}).get("running_cpus", 0.0)),
+                    reserved_cpu_hours=used.get("reserved_cpu_hours", 0.0),
                     searches=sum(1 for s in mine if s.state in _ACTIVE),
                     held=any(s.state == "held" for s in mine),
                 ))
-            searches = [SearchUsage(team=r["team"], search=r["search"], cpu_hours=r["cpu_hours"], segments=r["segments"])
+            searches = [SearchUsage(team=r["team"], search=r["search"], cpu_hours=r["cpu_hours"],
+                                    reserved_cpu_hours=r["reserved_cpu_hours"], segments=r["segments"])
                         for r in per_search if team is None or r["team"] == team]
             charged = {u.search for u in searches}
             searches += [SearchUsage(team=s.team, search=s.name, cpu_hours=0.0, segments=0) for s in self._ordered()
@@ -449,7 +459,7 @@ class LabHead:
                 self._set_state(s, "faulted", reason)
                 log.warning("search %s stopped: %s", s.name, reason)
             else:
-                self._set_state(s, "finished", None)
+                self._set_state(s, "finished", report.limit)  # the limit that ended it, if one did
                 log.info("search %s finished (%d segments)", s.name, report.segments)
             return
         s.last_stats = {}
@@ -478,7 +488,8 @@ class LabHead:
                 s.last_step = now - _IDLE_STEP * ((i * 0.6180339887) % 1.0)
                 try:
                     s.driver = SearchDriver(s.spec, s.spec_text, self.store_root, self._pool.lane(s.name),  # type: ignore[union-attr]
-                                            health=self.health, listener=self, persist_seconds=_PERSIST_SECONDS)
+                                            health=self.health, listener=self, persist_seconds=_PERSIST_SECONDS,
+                                            prefetch=self.config.head.queued_per_slot)
                     s.driver.begin()
                     s.driver.stagger(((i * 0.6180339887) % 1.0))
                 except Exception as exc:  # noqa: BLE001 (contained: this search's fault alone)
@@ -521,36 +532,54 @@ class LabHead:
             self.sharing.apply(Demand(s.team, s.name, *demand))
             s.demand = demand
         s.wall_started[(trial, attempt)] = self.wall()
+        at = max(self.clock(), self.sharing.now)
         self.sharing.apply(Started(_segment_id(search, trial, attempt), s.team, search, float(s.spec.resources.cpus),
-                                   int(s.spec.resources.memory_mb), max(self.clock(), self.sharing.now)))
+                                   int(s.spec.resources.memory_mb), at))
+        self._running_since[_segment_id(search, trial, attempt)] = (s.team, float(s.spec.resources.cpus), at)
         if s.demand is not None and s.demand[0] > 0:  # the sharing state counted the start down
             s.demand = (s.demand[0] - 1, *s.demand[1:])
 
     def ended(self, search: str, trial: int, attempt: int, rung: int, outcome: str, cpu_seconds: float,
-              summary: SegmentSummary | None, node: str) -> None:
+              summary: SegmentSummary | None, node: str, reserved_seconds: float) -> None:
         s = self._searches[search]
         sid = _segment_id(search, trial, attempt)
+        at = max(self.clock(), self.sharing.now)
         try:
-            self.sharing.apply(Ended(sid, at=max(self.clock(), self.sharing.now)))
+            self.sharing.apply(Ended(sid, at=at))
         except Exception:  # not known to the sharing state (started before a restart)
             pass
+        self._running_since.pop(sid, None)
         began = s.wall_started.pop((trial, attempt), None)
         cpus = float(s.spec.resources.cpus)
         if summary is not None and summary.ended >= summary.started > 0:
             start, end = summary.started, summary.ended
-        else:
+        else:  # the worker never answered: held for the seconds the driver saw it running
             end = self.wall()
-            start = end - cpu_seconds / cpus if cpus else end
+            start = end - reserved_seconds / cpus if cpus else end
         if began is not None and summary is None:
             start = min(max(start, began), end)
         ran = max(0.0, end - start)
         memory = int(s.spec.resources.memory_mb)
         self._ledger_rows.append(LedgerRow(
             team=s.team, search=search, trial=trial, attempt=attempt, rung=rung, node=node or "",
-            started=start, ended=end, cpus=cpus, cpu_seconds=cpus * ran, memory_mb=memory,
-            memory_mb_seconds=memory * ran, outcome=outcome, preempted=(trial, attempt) in s.preempted,
+            started=start, ended=end, cpus=cpus, cpu_seconds=max(0.0, float(cpu_seconds)),
+            reserved_cpu_seconds=cpus * ran, memory_mb=memory, memory_mb_seconds=memory * ran, outcome=outcome,
+            preempted=(trial, attempt) in s.preempted,
         ))
         s.preempted.discard((trial, attempt))
+        self._period_used[s.team] = self._period_used.get(s.team, 0.0) + max(0.0, float(cpu_seconds))
+        self._count_usage(s.team, at)
+
+    def _count_usage(self, team: str, at: float) -> None:
+        """The team's allowance usage in the sharing state, in CPU time: what its ended segments
+        used this period, plus what its running ones have reserved so far (the sharing state
+        accrues them by reservation until they end)."""
+        running = sum(cpus * max(0.0, at - since) for t, cpus, since in self._running_since.values() if t == team)
+        try:
+            self.sharing.apply(QuotaChanged(team, used_cpu_hours=(self._period_used.get(team, 0.0) + running) / 3600,
+                                            at=at))
+        except Exception:  # the sharing state is not configured yet, or the team left the config
+            pass
 
     # ---- helpers ---------------------------------------------------------------------------
 
@@ -582,6 +611,8 @@ class LabHead:
         quotas = self.config.quotas()
         if first:
             used = self.ledger.cpu_seconds_by_team(since=self._period_began)
+            for team, seconds in used.items():  # plus what ended before this (it is in the ledger's buffer)
+                self._period_used[team] = seconds + self._period_used.get(team, 0.0)
             quotas = tuple(replace(q, used_cpu_hours=used.get(q.name, 0.0) / 3600) for q in quotas)
         promised = sum(q.guarantee_cpus for q in quotas)
         if promised > capacity[0] > 0:
@@ -598,6 +629,7 @@ class LabHead:
         began = period_start(self.config.head.allowance_period, self.wall())
         if began != self._period_began:
             self._period_began = began
+            self._period_used.clear()
             for q in self.config.teams:
                 self.sharing.apply(QuotaChanged(q.name, used_cpu_hours=0.0))
             log.info("a new allowance period began; usage counts from 0")
@@ -652,13 +684,15 @@ class LabHead:
     def _info(self, s: _Search) -> SearchInfo:
         stats = self._stats(s)
         best = stats.get("best") or {}
-        running = len(s.driver.running) if s.driver is not None else 0
+        running, queued = s.driver.running_now() if s.driver is not None else (0, 0)
         return SearchInfo(
             name=s.name, team=s.team, priority=s.priority, state=s.state, reason=s.reason,  # type: ignore[arg-type]
             submitted_at=s.submitted_at, metric=s.spec.metric if s.spec else "", better=s.spec.better if s.spec else None,
             trials=int(stats.get("trials", 0)), segments=int(stats.get("segments", 0)),
-            running_segments=running, cpus_busy=running * float(s.spec.resources.cpus) if s.spec else 0.0,
+            running_segments=running, queued_segments=queued,
+            cpus_busy=running * float(s.spec.resources.cpus) if s.spec else 0.0,
             cpu_seconds=float(stats.get("cpu_seconds", 0.0)),
+            reserved_cpu_seconds=float(stats.get("reserved_cpu_seconds", stats.get("cpu_seconds", 0.0))),
             leader_value=_finite(best.get("value")), leader=best.get("trial"),
         )
 

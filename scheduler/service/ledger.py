@@ -1,8 +1,15 @@
-"""The CPU ledger: what every segment held, charged to its team, search and trial.
+"""The CPU ledger: what every segment used and held, charged to its team, search and trial.
 
-Theory of operation. The head appends one row per finished segment (CPUs and memory it
-reserved, from when to when by the worker's clock, how it ended) to Parquet files under
-``<store root>/_ledger/``; usage reports and allowances are sums over those rows. Each
+Theory of operation. The head appends one row per finished segment (the CPU time it used,
+the CPUs and memory it reserved, from when to when by the worker's clock, how it ended) to
+Parquet files under ``<store root>/_ledger/``; usage reports and allowances are sums over
+those rows. Two figures per row: ``cpu_seconds``, the CPU time the objective's threads and
+child processes used (measured by the worker, ``workers/cpu.py``; null when nobody could
+measure it), which is what CPU-hours and allowances count; and ``reserved_cpu_seconds``,
+``cpus * (ended - started)``, what the segment held. A sum counts a row whose CPU time is
+unknown at its reservation. Files written before rows carried both (no
+``reserved_cpu_seconds`` column) held the reservation in ``cpu_seconds``: readers take it as
+the reservation, with the CPU time unknown (:func:`_conform`). Each
 :meth:`Ledger.append` writes one new part file, atomically (temporary name, then rename,
 through the store's :class:`~rungway.scheduler.store.fs.Volume`), so any root the store
 takes works here too and a reader never sees half a file.
@@ -37,6 +44,7 @@ from typing import Any
 
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.dataset as ds
 
 from rungway.scheduler.store.checksums import check_named, parquet_bytes, sha256_hex
@@ -72,14 +80,17 @@ LEDGER_SCHEMA = pa.schema(
         pa.field("started", pa.float64(), nullable=False),
         pa.field("ended", pa.float64(), nullable=False),
         pa.field("cpus", pa.float64(), nullable=False),
-        pa.field("cpu_seconds", pa.float64(), nullable=False),
+        pa.field("reserved_cpu_seconds", pa.float64(), nullable=False),
+        pa.field("cpu_seconds", pa.float64()),
         pa.field("memory_mb", pa.int64(), nullable=False),
         pa.field("memory_mb_seconds", pa.float64(), nullable=False),
         pa.field("outcome", pa.string(), nullable=False),
         pa.field("preempted", pa.bool_(), nullable=False),
     ]
 )
-_REQUIRED = [f.name for f in LEDGER_SCHEMA if not f.nullable]
+_RESERVED = "reserved_cpu_seconds"
+# Files of the first ledger format have no reserved_cpu_seconds (their cpu_seconds is it).
+_REQUIRED = [f.name for f in LEDGER_SCHEMA if not f.nullable and f.name != _RESERVED]
 _ORDER = ["ended", "started", "team", "search", "trial", "rung", "attempt"]
 
 
@@ -88,8 +99,9 @@ class LedgerRow:
     """One segment's charge. ``started``/``ended``: Unix seconds on the worker's clock (both
     from one clock, so their difference holds whatever the head's clock says).
 
-    ``cpu_seconds`` and ``memory_mb_seconds`` are filled in from the others when left out;
-    when given, :meth:`Ledger.append` checks that they agree with them."""
+    ``cpu_seconds``: the CPU time the segment used, as measured; None when it is unknown.
+    ``reserved_cpu_seconds`` and ``memory_mb_seconds`` are filled in from the others when left
+    out; when given, :meth:`Ledger.append` checks that they agree with them."""
 
     team: str
     search: str
@@ -105,12 +117,13 @@ class LedgerRow:
     preempted: bool = False
     cpu_seconds: float | None = None
     memory_mb_seconds: float | None = None
+    reserved_cpu_seconds: float | None = None
 
     def __post_init__(self) -> None:
         if all(_is_number(v) for v in (self.started, self.ended, self.cpus, self.memory_mb)):
             ran = self.ended - self.started
-            if self.cpu_seconds is None:
-                object.__setattr__(self, "cpu_seconds", float(self.cpus * ran))
+            if self.reserved_cpu_seconds is None:
+                object.__setattr__(self, "reserved_cpu_seconds", float(self.cpus * ran))
             if self.memory_mb_seconds is None:
                 object.__setattr__(self, "memory_mb_seconds", float(self.memory_mb * ran))
 
@@ -140,11 +153,15 @@ def _check(rows: Sequence[LedgerRow]) -> list[dict[str, Any]]:
             # Both come from one worker clock; a step backwards (NTP) is the caller's to clamp.
             raise InvalidRows(f"row {index}: ended ({row.ended!r}) is before started ({row.started!r})", column="ended")
         values = asdict(row)
+        used = row.cpu_seconds
+        if used is not None and (not _is_number(used) or not math.isfinite(used) or used < 0):
+            raise InvalidRows(f"row {index}: the CPU time used must be a finite number >= 0, or None when unknown, "
+                              f"got {used!r}", column="cpu_seconds")
         ran = row.ended - row.started
-        for name, amount in (("cpu_seconds", row.cpus), ("memory_mb_seconds", row.memory_mb)):
+        for name, amount in ((_RESERVED, row.cpus), ("memory_mb_seconds", row.memory_mb)):
             given, expected = values[name], float(amount * ran)
             if not _is_number(given) or not math.isclose(given, expected, rel_tol=1e-9, abs_tol=1e-9):
-                what = "cpus" if name == "cpu_seconds" else "memory_mb"
+                what = "cpus" if name == _RESERVED else "memory_mb"
                 raise InvalidRows(f"row {index}: must be {what} * (ended - started) = {expected!r}, got {given!r}",
                                   column=name)
             values[name] = expected  # one rule for every row, whatever rounding the caller did
@@ -154,6 +171,12 @@ def _check(rows: Sequence[LedgerRow]) -> list[dict[str, Any]]:
 
 def _is_number(value: Any) -> bool:
     return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+def _charged(table: pa.Table) -> pa.Table:
+    """``table`` with a column ``charged``: the CPU time used, or the reservation where unknown."""
+    charged = pc.coalesce(table["cpu_seconds"], table[_RESERVED])
+    return table.append_column("charged", charged)
 
 
 @dataclass
@@ -176,9 +199,15 @@ def _sources(schema: pa.Schema, path: str) -> list[tuple[str, int]]:
 
 
 def _conform(table: pa.Table, path: str) -> pa.Table:
-    """One file's rows with the ledger's columns, in order; a file without them is foreign."""
+    """One file's rows with the ledger's columns, in order; a file without them is foreign.
+
+    A file of the first format (no ``reserved_cpu_seconds``) held the reservation in
+    ``cpu_seconds``: it becomes ``reserved_cpu_seconds``, and the CPU time used is unknown."""
     folder = posixpath.dirname(path)
-    for name in _REQUIRED:
+    if _RESERVED not in table.schema.names and "cpu_seconds" in table.schema.names:
+        reserved = table["cpu_seconds"]
+        table = table.drop_columns(["cpu_seconds"]).append_column(_RESERVED, reserved)
+    for name in _REQUIRED + [_RESERVED]:
         if name not in table.schema.names or table[name].null_count:
             raise StorageCorrupt(
                 f"a file under {folder} lacks ledger column {name!r} ({posixpath.basename(path)}); move files "
@@ -244,29 +273,32 @@ class Ledger:
         return frame.sort_values(_ORDER, kind="stable").reset_index(drop=True)
 
     def cpu_seconds_by_team(self, since: float | None = None) -> dict[str, float]:
-        """CPU-seconds per team over the rows that ended at or after ``since``."""
-        table = self._table(since, None, ["team", "cpu_seconds"])
-        grouped = table.group_by("team").aggregate([("cpu_seconds", "sum")])
-        return dict(zip(grouped["team"].to_pylist(), grouped["cpu_seconds_sum"].to_pylist()))
+        """CPU-seconds used per team over the rows that ended at or after ``since`` (a row whose
+        CPU time is unknown counts its reservation)."""
+        table = _charged(self._table(since, None, ["team", "cpu_seconds", _RESERVED]))
+        grouped = table.group_by("team").aggregate([("charged", "sum")])
+        return dict(zip(grouped["team"].to_pylist(), grouped["charged_sum"].to_pylist()))
 
     def usage(
         self, since: float | None = None, until: float | None = None
     ) -> tuple[dict[str, dict[str, float]], list[dict[str, Any]]]:
-        """Usage over [since, until): per team ``{"cpu_hours", "memory_mb_hours", "segments"}``,
-        and per (team, search) a dict with the fields of ``models.SearchUsage``, sorted by
-        team then search. Segments count ledger rows."""
-        table = self._table(since, until, ["team", "search", "cpu_seconds", "memory_mb_seconds"])
-        sums = [("cpu_seconds", "sum"), ("memory_mb_seconds", "sum"), ("team", "count")]
+        """Usage over [since, until): per team ``{"cpu_hours", "reserved_cpu_hours",
+        "memory_mb_hours", "segments"}``, and per (team, search) a dict with the fields of
+        ``models.SearchUsage``, sorted by team then search. ``cpu_hours`` is CPU time used (a
+        row whose CPU time is unknown counts its reservation); segments count ledger rows."""
+        table = _charged(self._table(since, until, ["team", "search", "cpu_seconds", _RESERVED, "memory_mb_seconds"]))
+        sums = [("charged", "sum"), (_RESERVED, "sum"), ("memory_mb_seconds", "sum"), ("team", "count")]
         teams: dict[str, dict[str, float]] = {}
         for row in table.group_by("team").aggregate(sums).to_pylist():
             teams[row["team"]] = {
-                "cpu_hours": row["cpu_seconds_sum"] / 3600,
+                "cpu_hours": row["charged_sum"] / 3600,
+                "reserved_cpu_hours": row[f"{_RESERVED}_sum"] / 3600,
                 "memory_mb_hours": row["memory_mb_seconds_sum"] / 3600,
                 "segments": row["team_count"],
             }
         searches = [
-            {"team": row["team"], "search": row["search"], "cpu_hours": row["cpu_seconds_sum"] / 3600,
-             "segments": row["team_count"]}
+            {"team": row["team"], "search": row["search"], "cpu_hours": row["charged_sum"] / 3600,
+             "reserved_cpu_hours": row[f"{_RESERVED}_sum"] / 3600, "segments": row["team_count"]}
             for row in table.group_by(["team", "search"]).aggregate(sums).to_pylist()
         ]
         searches.sort(key=lambda s: (s["team"], s["search"]))
@@ -305,10 +337,16 @@ class Ledger:
         sources: dict[str, list[tuple[str, int]]] = {}
         for name in blocks:
             path = posixpath.join(self.folder, name)
-            schema = self.volume.read_schema(path)  # the footer only
-            if schema is None:
-                return None
-            sources[name] = _sources(schema, path)
+            try:
+                schema = self.volume.read_schema(path)  # the footer only
+                if schema is None:
+                    return None
+                sources[name] = _sources(schema, path)
+            except StorageCorrupt:
+                data = self.volume.read_bytes(path)
+                if data is not None:
+                    _check_file(path, data)  # a damaged file: say so, and what moving it aside costs
+                raise
         covered = {src for held in sources.values() for src, _ in held}
         listing = _Listing(
             parts=[n for n in names if n.startswith(_PART) and n not in covered],

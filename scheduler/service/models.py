@@ -48,9 +48,11 @@ class SearchInfo(_Model):
     better: Literal["higher", "lower"] | None  # None only while a faulted search's spec cannot be read
     trials: int = 0
     segments: int = 0
-    running_segments: int = 0
+    running_segments: int = Field(0, description="segments running now")
+    queued_segments: int = Field(0, description="segments submitted that wait for a CPU (head.queued_per_slot)")
     cpus_busy: float = 0.0
-    cpu_seconds: float = 0.0
+    cpu_seconds: float = Field(0.0, description="CPU time its segments used (limits.cpu_hours counts it)")
+    reserved_cpu_seconds: float = Field(0.0, description="CPUs its segments reserved times how long they held them")
     leader: int | None = None
     leader_value: float | None = None
 
@@ -67,7 +69,9 @@ class TeamUsage(_Model):
     cap_cpus: float | None
     weight: float
     allowance_cpu_hours: float | None
-    used_cpu_hours: float = Field(..., description="CPU-hours charged in the period")
+    used_cpu_hours: float = Field(..., description="CPU-hours used in the period: the CPU time of its segments "
+                                                  "(what allowance_cpu_hours counts)")
+    reserved_cpu_hours: float = Field(0.0, description="CPUs its segments reserved times hours held, in the period")
     memory_mb_hours: float = 0.0
     cpus_running: float = 0.0
     searches: int = 0
@@ -77,7 +81,8 @@ class TeamUsage(_Model):
 class SearchUsage(_Model):
     team: str
     search: str
-    cpu_hours: float
+    cpu_hours: float = Field(..., description="CPU time its segments used, in hours")
+    reserved_cpu_hours: float = Field(0.0, description="CPUs its segments reserved times hours held")
     segments: int
 
 

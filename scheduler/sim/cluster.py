@@ -23,8 +23,14 @@ operation:
   ``requeue_delay`` seconds (the head noticing), and the worker comes back after
   ``repair_seconds``. A requeued segment runs again from the trial's last saved budget; as
   with the real head, a trial lost more than ``plan.max_losses`` times fails.
-- Limits as the real driver applies them: after ``admit_until`` simulated seconds or
-  ``max_cpu_hours`` of finished segments, the core is told to start no new trials.
+- Limits as the real driver applies them (``head/limits.py``): no segment starts whose
+  expected cost (fitted per budget unit from the segments finished so far) would take the
+  CPU time over ``max_cpu_hours`` or end after ``deadline``; the first one refused is given
+  back to the core (an uncounted requeue), nothing more starts and the run ends when what runs
+  has finished. CPU time is busy slot time times CPUs per trial times ``cpu_per_reserved``
+  (the CPU time an objective uses per CPU-second it reserves; 1 keeps its CPUs busy).
+  ``admit_until`` (a simulation knob, not a spec limit) only stops new trials after that many
+  simulated seconds; started trials run on.
 
 Nothing here reads a clock or global random state; all randomness comes from generators
 spawned from ``seed``.
@@ -43,6 +49,7 @@ from ..core.events import Continue, Drained, Segment
 from ..core.plan import SearchPlan
 from ..core.samplers.base import Sampler
 from ..core.search import SearchCore
+from ..head.limits import Limits
 from .costs import CostModel, CurveValue, ValueModel
 
 __all__ = ["SimResult", "simulate"]
@@ -58,6 +65,8 @@ class SimResult:
     wall_seconds: float
     """Simulated time from the start to the end (drained, ``until`` or ``max_events``)."""
     cpu_hours: float
+    """CPU time: ``reserved_cpu_hours`` times ``cpu_per_reserved`` (work lost to failures included)."""
+    reserved_cpu_hours: float
     """Busy slot-seconds times CPUs per trial, in hours (work lost to failures included)."""
     utilization: float
     """Busy slot-time / (slots x wall time); slots of failed workers count as provisioned."""
@@ -91,6 +100,8 @@ class SimResult:
     """``core.statistics()`` at the end."""
     core: SearchCore | None = field(repr=False, compare=False, default=None)
     """The core itself, for a look at its trials (``core.trials()``)."""
+    limit: str | None = None
+    """Why a limit stopped the run before it drained (as the head would say), or None."""
 
     @property
     def segments_per_hour(self) -> float:
@@ -130,6 +141,8 @@ def simulate(
     resumable: bool = True,
     admit_until: float | None = None,
     max_cpu_hours: float | None = None,
+    deadline: float | None = None,
+    cpu_per_reserved: float = 1.0,
     seed: int = 0,
     target: float | None = None,
     until: float | None = None,
@@ -163,11 +176,13 @@ def simulate(
             raise ValueError(f"a quota of {quota_cpus} CPUs cannot run a trial needing {cpus_per_trial}")
     if failure_rate_per_hour < 0 or requeue_delay < 0 or repair_seconds < 0 or not dispatch_gap >= 0:
         raise ValueError("failure_rate_per_hour, requeue_delay, repair_seconds and dispatch_gap must be >= 0")
+    if not (cpu_per_reserved >= 0 and math.isfinite(cpu_per_reserved)):
+        raise ValueError(f"cpu_per_reserved must be a finite number >= 0 (got {cpu_per_reserved!r})")
     if (not plan.synchronous and plan.max_trials is None and admit_until is None and max_cpu_hours is None
-            and until is None and max_events is None):
+            and deadline is None and until is None and max_events is None):
         raise ValueError(
             "an asynchronous plan without max_trials starts trials for ever: give the plan a "
-            "max_trials, or pass admit_until, max_cpu_hours, until or max_events"
+            "max_trials, or pass admit_until, max_cpu_hours, deadline, until or max_events"
         )
 
     cost_rng, value_rng, fail_rng = (np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(3))
@@ -190,6 +205,7 @@ def simulate(
     s_miles: list[tuple[Any, ...]] = [()] * n_slots
     s_mi = [0] * n_slots
     s_budget = [0.0] * n_slots  # the budget the current piece started from
+    s_span: list[tuple[float, float]] = [(0.0, 0.0)] * n_slots  # the segment's (start, target) budgets
     s_since = [0.0] * n_slots  # when the current piece started
     in_pool = [True] * n_slots
     pool = list(range(n_slots - 1, -1, -1))  # free slots on live workers (lazily cleaned)
@@ -208,18 +224,22 @@ def simulate(
 
     now = 0.0
     running = 0
-    busy = 0.0  # slot-seconds of finished pieces
-    finished_busy = 0.0  # slot-seconds of segments that ended (for max_cpu_hours)
+    busy = 0.0  # slot-seconds of finished pieces (and of pieces lost to failures)
     segments = results = lost = failures = decisions = events = 0
     budget_run = 0.0
     pending_notices = 0
     drained = False
     admitting = True
     tt: float | None = None
-    cpu_limit = None if max_cpu_hours is None else max_cpu_hours * 3600.0 / cpus_per_trial
+    cpu_rate = cpus_per_trial * cpu_per_reserved  # CPU seconds per busy slot-second
+    limits = Limits(max_cpu_hours, deadline, None) if max_cpu_hours is not None or deadline is not None else None
+    if limits is not None:
+        limits.resumes = resumable
+    stopped: str | None = None  # why a limit stopped the run
+    run_units = 0.0  # budget units the running segments run, as the limits count them
 
     def start(slot: int, seg: Segment, at: float) -> None:
-        nonlocal seq, running
+        nonlocal seq, running, run_units
         miles = seg.milestones
         s_state[slot] = _BUSY
         tok = s_token[slot] + 1
@@ -230,6 +250,9 @@ def simulate(
         s_config[slot] = seg.config
         s_miles[slot] = miles
         s_mi[slot] = 0
+        s_span[slot] = (float(seg.start_budget), float(miles[-1]))
+        if limits is not None:
+            run_units += limits.units(*s_span[slot])
         begin = seg.start_budget if resumable else 0
         s_budget[slot] = begin
         at += dispatch_gap  # the slot waits for the segment to reach it; that wait is not busy
@@ -240,7 +263,7 @@ def simulate(
 
     while True:
         # fill free slots until the core has nothing to hand out
-        while pool and running < cap and not drained:
+        while pool and running < cap and not drained and stopped is None:
             slot = pool.pop()
             in_pool[slot] = False
             if s_state[slot] != _IDLE_SLOT:
@@ -248,8 +271,17 @@ def simulate(
             out = ask()
             decisions += 1
             if type(out) is Segment:
-                start(slot, out, now)
-                continue
+                why = None if limits is None else limits.refuse(
+                    float(out.start_budget), float(out.target_budget), used_cpu=busy * cpu_rate, elapsed=now, slots=cap,
+                    ahead=(running, run_units))
+                if why is None:
+                    start(slot, out, now)
+                    continue
+                lost_fn(out.trial, out.attempt, False)  # given back, uncounted, as the head does
+                stopped = why
+                pool.append(slot)
+                in_pool[slot] = True
+                break
             pool.append(slot)
             in_pool[slot] = True
             if type(out) is Drained:
@@ -257,7 +289,7 @@ def simulate(
             elif running == 0 and pending_notices == 0:
                 raise RuntimeError(f"the core is idle with nothing running or requeued: {core.statistics()}")
             break
-        if drained or not heap:
+        if drained or not heap or (stopped is not None and running == 0 and pending_notices == 0):
             break
         if max_events is not None and events >= max_events:
             break
@@ -272,10 +304,11 @@ def simulate(
                 continue  # the segment died with its worker
             piece = now - s_since[slot]
             busy += piece
-            finished_busy += piece
             mi = s_mi[slot]
             miles = s_miles[slot]
             budget = miles[mi]
+            if limits is not None:
+                limits.record(s_span[slot][0], budget, budget - s_budget[slot], piece * cpu_rate, piece, None)
             rung = s_rung[slot]
             tid = s_trial[slot]
             budget_run += budget - s_budget[slot]
@@ -296,15 +329,15 @@ def simulate(
                 continue
             segments += 1
             running -= 1
+            if limits is not None:
+                run_units -= limits.units(*s_span[slot])
             s_state[slot] = _IDLE_SLOT
             s_config[slot] = None
             if not in_pool[slot]:
                 pool.append(slot)
                 in_pool[slot] = True
-            if admitting and ((admit_until is not None and now >= admit_until)
-                              or (cpu_limit is not None and finished_busy >= cpu_limit)):
-                core.stop_admitting()
-                admitting = False
+            if stopped is None and limits is not None:
+                stopped = limits.crossed(busy * cpu_rate, now)
         elif kind == _FAIL:
             failures += 1
             first = a * per_worker
@@ -312,6 +345,8 @@ def simulate(
                 if s_state[slot] == _BUSY:
                     busy += now - s_since[slot]
                     running -= 1
+                    if limits is not None:
+                        run_units -= limits.units(*s_span[slot])
                     push(heap, (now + requeue_delay, seq, _NOTICE, s_trial[slot], s_attempt[slot]))
                     seq += 1
                     pending_notices += 1
@@ -345,7 +380,8 @@ def simulate(
     wall = now
     return SimResult(
         wall_seconds=wall,
-        cpu_hours=busy * cpus_per_trial / 3600.0,
+        cpu_hours=busy * cpu_rate / 3600.0,
+        reserved_cpu_hours=busy * cpus_per_trial / 3600.0,
         utilization=busy / (cap * wall) if wall > 0 else 0.0,
         slots=cap,
         segments=segments,
@@ -363,4 +399,5 @@ def simulate(
         events=events,
         statistics=stats,
         core=core,
+        limit=stopped,
     )

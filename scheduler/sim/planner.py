@@ -2,8 +2,11 @@
 
 :func:`plan_search` simulates the spec's search ``repeats`` times on the given cluster, each
 with its own seed (sampler, costs, values and failures all change with it), and reports the
-median and the 10th-90th percentile interval of wall time, CPU-hours, utilization, segments
-and the number of results at every rung of every bracket.
+median and the 10th-90th percentile interval of wall time, CPU-hours (CPU time, what
+``limits.cpu_hours`` counts), reserved CPU-hours (CPUs held times wall time), utilization,
+segments and the number of results at every rung of every bracket. CPU time is the
+reservation times the CPU time the objective uses per CPU-second it reserves: 1 unless told
+(``cpu_per_reserved``; ``rungway plan --from-search`` takes the finished search's own ratio).
 
 The cost model decides everything about time. Without one, the planner uses
 :data:`DEFAULT_SECONDS_PER_UNIT` seconds per budget unit and no per-segment overhead -- a
@@ -21,6 +24,7 @@ from typing import Any
 import numpy as np
 
 from ..core.errors import SpecError
+from ..core.plan import bracket_name
 from .cluster import SimResult, simulate
 from .costs import CostModel, FittedCost, LinearCost, ValueModel, dispatch_gap_from_measurements
 
@@ -84,6 +88,9 @@ class PlanEstimate:
     failure_rate_per_hour: float
     wall_seconds: Interval
     cpu_hours: Interval
+    """CPU time, in hours (what limits.cpu_hours counts)."""
+    reserved_cpu_hours: Interval
+    """CPUs reserved times wall time, in hours."""
     utilization: Interval
     segments: Interval
     lost: Interval
@@ -93,9 +100,11 @@ class PlanEstimate:
     """Results per rung per bracket."""
     budgets: tuple[tuple[float, ...], ...]
     drained: int
-    """How many of the repeats drained (the rest hit the event guard)."""
+    """How many of the repeats drained or were ended by a limit (the rest hit the event guard)."""
     notes: tuple[str, ...] = ()
     runs: tuple[SimResult, ...] = field(default=(), repr=False)
+    cpu_per_reserved: float = 1.0
+    """CPU time the objective uses per CPU-second it reserves, as simulated."""
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -105,15 +114,31 @@ class PlanEstimate:
             "interval": f"{int(QUANTILES[0] * 100)}th-{int(QUANTILES[1] * 100)}th percentile",
             "cost": self.cost, "cost_is_default": self.cost_is_default, "resumable": self.resumable,
             "wall_seconds": self.wall_seconds.to_dict(), "cpu_hours": self.cpu_hours.to_dict(),
+            "reserved_cpu_hours": self.reserved_cpu_hours.to_dict(), "cpu_per_reserved": self.cpu_per_reserved,
             "utilization": self.utilization.to_dict(), "segments": self.segments.to_dict(),
             "lost": self.lost.to_dict(), "failure_rate_per_hour": self.failure_rate_per_hour,
             "trials": self.trials.to_dict(),
             "brackets": [
-                [{"budget": b, **iv.to_dict()} for b, iv in zip(budgets, rungs, strict=True)]
-                for budgets, rungs in zip(self.budgets, self.trials_per_rung, strict=True)
+                {"s": s, **({"iteration": iteration} if iteration is not None else {}),
+                 "rungs": [{"budget": b, **iv.to_dict()} for b, iv in zip(budgets, rungs, strict=True)]}
+                for (s, iteration), budgets, rungs in zip(
+                    self.bracket_labels(), self.budgets, self.trials_per_rung, strict=True)
             ],
             "drained": self.drained, "notes": list(self.notes),
         }
+
+    def bracket_labels(self) -> list[tuple[int, int | None]]:
+        """(s, iteration) of each bracket, as ``core.statistics()`` names them: s is Li et al.'s
+        (the bracket's rungs minus one; s = s_max starts at the minimum budget), the iteration
+        (from 1) is given only when ``sync-hyperband`` repeats its brackets."""
+        ss = [len(budgets) - 1 for budgets in self.budgets]
+        repeated = len(set(ss)) < len(ss)
+        seen: dict[int, int] = {}
+        out: list[tuple[int, int | None]] = []
+        for s in ss:
+            seen[s] = seen.get(s, 0) + 1
+            out.append((s, seen[s] if repeated else None))
+        return out
 
     def format(self) -> str:
         """The report ``rungway plan`` prints."""
@@ -127,7 +152,10 @@ class PlanEstimate:
             f"{self.repeats} simulated run(s), seeds {self.seed}..{self.seed + self.repeats - 1}; "
             f"median [{lo}th - {hi}th percentile]:",
             f"  wall time    {_duration(self.wall_seconds.median)}  [{_duration(self.wall_seconds.low)} - {_duration(self.wall_seconds.high)}]",
-            f"  CPU-hours    {_num(self.cpu_hours.median)}  [{_num(self.cpu_hours.low)} - {_num(self.cpu_hours.high)}]",
+            f"  CPU-hours    {_num(self.cpu_hours.median)}  [{_num(self.cpu_hours.low)} - {_num(self.cpu_hours.high)}]"
+            f"  (CPU time: {self.cpu_per_reserved:.3g} CPU-second per CPU-second reserved)",
+            f"  reserved     {_num(self.reserved_cpu_hours.median)}  [{_num(self.reserved_cpu_hours.low)} - "
+            f"{_num(self.reserved_cpu_hours.high)}]  (CPU-hours held: CPUs x wall time)",
             f"  utilization  {self.utilization.median:.1%}  [{self.utilization.low:.1%} - {self.utilization.high:.1%}]",
             f"  segments     {_num(self.segments.median)}  [{_num(self.segments.low)} - {_num(self.segments.high)}]",
             *([f"  lost         {_num(self.lost.median)}  [{_num(self.lost.low)} - {_num(self.lost.high)}]"
@@ -136,8 +164,8 @@ class PlanEstimate:
             "  results per rung:",
         ]
         many = len(self.budgets) > 1
-        for index, (budgets, rungs) in enumerate(zip(self.budgets, self.trials_per_rung, strict=True)):
-            head = f"    bracket {index}: " if many else "    "
+        for (s, iteration), budgets, rungs in zip(self.bracket_labels(), self.budgets, self.trials_per_rung, strict=True):
+            head = f"    {bracket_name(s, iteration)}: " if many else "    "
             cells = [f"{self.unit} {b:g}: {_num(iv.median)} [{_num(iv.low)}-{_num(iv.high)}]" for b, iv in zip(budgets, rungs, strict=True)]
             lines.append(head + " | ".join(cells))
         if self.drained < self.repeats:
@@ -194,6 +222,7 @@ def plan_search(
     value_model: ValueModel | None = None,
     max_events: int = 50_000_000,
     dispatch_gap: float | None = None,
+    cpu_per_reserved: float | None = None,
 ) -> PlanEstimate:
     """Simulate ``spec``'s search ``repeats`` times on ``workers`` workers; see the module doc.
 
@@ -202,8 +231,9 @@ def plan_search(
     ``read_measurements()`` method; it is used when ``cost`` is None. ``resumable`` (None:
     look at the objective's form) says whether promoted segments resume from a checkpoint or
     train again from budget 0. ``dispatch_gap`` (None: fitted with the costs, else 0) is how
-    long a slot stands empty between segments. Run ``r`` uses seed ``seed + r`` for
-    everything random.
+    long a slot stands empty between segments. ``cpu_per_reserved`` (None: 1, an objective
+    that keeps its CPUs busy) is the CPU time the objective uses per CPU-second it reserves.
+    Run ``r`` uses seed ``seed + r`` for everything random.
     """
     if isinstance(repeats, bool) or not isinstance(repeats, int) or repeats < 1:
         raise SpecError(f"must be an integer >= 1 (got {repeats!r})", field="repeats")
@@ -253,10 +283,17 @@ def plan_search(
             notes.append(note)
     if not resumable:
         notes.append("the objective has the plain form: every promoted segment trains again from budget 0")
+    if cpu_per_reserved is None:
+        cpu_per_reserved = 1.0
+        if cpu_limit is not None:
+            notes.append("CPU time assumed equal to the CPUs reserved times wall time (an objective that keeps "
+                         "its CPUs busy); --from-search takes a finished search's own ratio")
     if deadline is not None:
-        notes.append(f"limits.deadline ({deadline:g} s) stops admitting new trials in the simulation too")
+        notes.append(f"limits.deadline ({deadline:g} s): as in the head, no segment starts that is expected to end "
+                     "after it, and the run ends when what runs has finished")
     if cpu_limit is not None:
-        notes.append(f"limits.cpu_hours ({cpu_limit:g}) stops admitting new trials in the simulation too")
+        notes.append(f"limits.cpu_hours ({cpu_limit:g}, CPU time): as in the head, no segment starts whose expected "
+                     "CPU time would cross it, and the run ends when what runs has finished")
     if failure_rate_per_hour > 0:
         notes.append(
             f"node failures: {failure_rate_per_hour:g} per worker per hour; a lost segment is requeued "
@@ -274,7 +311,8 @@ def plan_search(
             plan, sampler, workers, cost, value_model=value_model, cpus_per_trial=cpus_per_trial,
             cpus_per_worker=cpus_per_worker, failure_rate_per_hour=failure_rate_per_hour,
             requeue_delay=requeue_delay, repair_seconds=repair_seconds,
-            quota_cpus=quota_cpus, resumable=resumable, admit_until=deadline, max_cpu_hours=cpu_limit,
+            quota_cpus=quota_cpus, resumable=resumable, deadline=deadline, max_cpu_hours=cpu_limit,
+            cpu_per_reserved=cpu_per_reserved,
             seed=run_seed, max_events=max_events, dispatch_gap=dispatch_gap,
         ), core=None))
     shapes = {tuple(len(b) for b in run.trials_per_rung) for run in runs}
@@ -291,10 +329,12 @@ def plan_search(
         resumable=bool(resumable), failure_rate_per_hour=float(failure_rate_per_hour),
         wall_seconds=Interval.of([r.wall_seconds for r in runs]),
         cpu_hours=Interval.of([r.cpu_hours for r in runs]),
+        reserved_cpu_hours=Interval.of([r.reserved_cpu_hours for r in runs]),
         utilization=Interval.of([r.utilization for r in runs]),
         segments=Interval.of([r.segments for r in runs]),
         lost=Interval.of([r.lost for r in runs]),
         trials=Interval.of([r.trials for r in runs]),
         trials_per_rung=per_rung, budgets=runs[0].budgets,
-        drained=sum(r.drained for r in runs), notes=tuple(notes), runs=tuple(runs),
+        drained=sum(r.drained or r.limit is not None for r in runs), notes=tuple(notes), runs=tuple(runs),
+        cpu_per_reserved=float(cpu_per_reserved),
     )

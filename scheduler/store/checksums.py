@@ -224,10 +224,11 @@ def seal_json(text: str, label: str) -> bytes:
 def open_json(data: bytes, label: str, path: str, remedy: str) -> str:
     """The JSON text of a sealed object (checked), or of an old one without a checksum."""
     head = len(_JSON_HEAD) + 64
-    if data[: len(_JSON_HEAD)] == _JSON_HEAD and data[head : head + 1] == b'"' and set(data[len(_JSON_HEAD) : head]) <= _HEX:
+    digest = data[len(_JSON_HEAD) : head]
+    if data[: len(_JSON_HEAD)] == _JSON_HEAD and data[head : head + 1] == b'"' and set(digest) <= _HEX:
         rest = data[head + 1 :]
         body = b"{" + (rest[1:] if rest.startswith(b",") else rest)  # no comma: an empty object
-        if sha256_hex(body, label).encode() != data[len(_JSON_HEAD) : head]:
+        if sha256_hex(body, label).encode() != digest:
             raise StorageCorrupt(f"{path} is damaged: its bytes do not match their checksum (damaged, or copied "
                                  f"here from another place than {label}); {remedy}", path=path)
         return body.decode("utf-8")

@@ -12,6 +12,10 @@ none, never a half-written one. Temporary names start with ``.`` and end in
 ``.tmp-<hex>``, so directory readers (pyarrow.dataset, pandas, ``*.parquet`` globs) skip
 them. Other pyarrow file systems (object stores) get write-then-move without fsync; an
 object store's single PUT is atomic on its own.
+
+A :class:`Volume` may carry a ``check`` (the store's and the ledger's, :mod:`.checksums`):
+it sees the bytes of every Parquet file read through the volume before they are parsed, so a
+damaged file never reaches a caller as a table.
 """
 
 from __future__ import annotations
@@ -83,7 +87,7 @@ def translate(exc: BaseException, path: str, action: str) -> StorageError:
             f"then resume the search",
             path=path,
         )
-    if isinstance(exc, pa.ArrowException) and not isinstance(exc, OSError):
+    if isinstance(exc, (pa.ArrowException, UnicodeDecodeError)) and not isinstance(exc, OSError):
         return StorageCorrupt(
             f"{path} cannot be read ({exc}); move it out of the search folder and resume "
             f"(only what that file held is lost)",
@@ -101,7 +105,7 @@ def _faults(path: str, action: str, *, reading: bool = False) -> Iterator[None]:
         raise
     except OSError as exc:
         raise translate(exc, path, action) from exc
-    except pa.ArrowException as exc:
+    except (pa.ArrowException, UnicodeDecodeError) as exc:  # a damaged footer may hold bad text
         if not reading:
             raise
         raise translate(exc, path, action) from exc

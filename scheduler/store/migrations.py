@@ -162,7 +162,8 @@ def _to_3(volume: Volume, base: str) -> None:
                 parquet = pq.ParquetFile(pa.BufferReader(trials))
                 if checksums.EMBEDDED_KEY not in (parquet.metadata.metadata or {}):
                     table = parquet.read()
-                    volume.write_bytes(layout.trials, checksums.sealed_parquet_bytes(table, layout.label(layout.trials)))
+                    sealed = checksums.sealed_parquet_bytes(table, layout.label(layout.trials))
+                    volume.write_bytes(layout.trials, sealed)
             except (pa.ArrowException, OSError) as exc:  # left as it is: reading it says what is wrong
                 log.warning("%s cannot be read (%s); it stays without a checksum", layout.trials, exc)
         state_path = posixpath.join(layout.journal, _HEAD_STATE)

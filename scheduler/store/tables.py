@@ -147,8 +147,11 @@ def _merged_parts(schema: pa.Schema, path: str) -> set[str]:
         return set()
     try:
         names = json.loads(raw)
+        if not isinstance(names, list) or not all(isinstance(name, str) for name in names):
+            raise ValueError(f"not a list of file names: {raw[:80]!r}")
     except ValueError as exc:
-        raise StorageCorrupt(f"{path} has an unreadable part list ({exc}); move it aside", path=path) from exc
+        raise StorageCorrupt(f"{path} has an unreadable part list ({exc}); {_measurements_remedy(path)}",
+                             path=path) from exc
     return set(names)
 
 
@@ -215,9 +218,15 @@ def plan_compaction(volume: Volume, layout: SearchLayout) -> CompactionPlan:
             continue
         numbers.append(number)
         path = posixpath.join(folder, name)
-        schema = volume.read_schema(path)
-        if schema is not None:
-            covered.update(dict.fromkeys(_merged_parts(schema, path), name))
+        try:
+            schema = volume.read_schema(path)
+            if schema is not None:
+                covered.update(dict.fromkeys(_merged_parts(schema, path), name))
+        except StorageCorrupt:
+            data = volume.read_bytes(path)
+            if data is not None:
+                _check_measurements(path, data)  # a damaged block: say so, and what moving it aside costs
+            raise
     parts = [name for name in files if is_part(name)]
     leftovers = [name for name in parts if name in covered]
     return CompactionPlan(

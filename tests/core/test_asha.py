@@ -212,13 +212,15 @@ def test_stopping_form_requeue_resumes_at_the_current_rung() -> None:
     assert (again.trial, again.rung, again.start_budget, again.milestones) == (0, 1, 1, (3, 9))
 
 
-def test_hyperband_deals_new_trials_to_brackets_in_turn() -> None:
+def test_hyperband_deals_new_trials_in_proportion_to_the_bracket_counts() -> None:
     core = SearchCore(SearchPlan(mode="hyperband", min_budget=1, max_budget=9, eta=3), CountingSampler())
     segments = [core.ask() for _ in range(6)]
     assert all(isinstance(s, Segment) for s in segments)
-    # s_max = 2: brackets with bottom budgets 1, 3, 9, dealt round-robin.
-    assert [s.bracket for s in segments] == [0, 1, 2, 0, 1, 2]  # type: ignore[union-attr]
-    assert [s.target_budget for s in segments] == [1, 3, 9, 1, 3, 9]  # type: ignore[union-attr]
+    # s_max = 2: brackets s = 2, 1, 0 with bottom budgets 1, 3, 9 and n_s = 9, 5, 3 (Li et al.,
+    # JMLR 2018, Algorithm 1: ceil(3 / (s + 1) * 3**s)). The quota method's picks, worked by
+    # hand: see tests/core/test_hyperband_dealing.py.
+    assert [s.bracket for s in segments] == [0, 1, 0, 0, 2, 1]  # type: ignore[union-attr]
+    assert [s.target_budget for s in segments] == [1, 3, 1, 1, 9, 3]  # type: ignore[union-attr]
 
 
 def test_full_budget_runs_every_trial_to_max_budget() -> None:

@@ -71,7 +71,7 @@ class _Ledgerer:
         return None
 
     def ended(self, search: str, trial: int, attempt: int, rung: int, outcome: str, cpu_seconds: float,
-              summary: Any, node: str) -> None:
+              summary: Any, node: str, reserved_seconds: float) -> None:
         started = float(getattr(summary, "started", 0.0) or 1_000.0)
         ended = max(started, float(getattr(summary, "ended", 0.0) or started))
         kind = {"result": "result", "yielded": "yielded", "lost": "lost", "crashed": "crashed"}.get(outcome, "other")
@@ -296,7 +296,8 @@ def classify(fuzz: Fuzz, kind: str, operation: str, changed: dict[Path, bytes], 
             path.write_bytes(data)
 
 
-def test_no_damage_is_read_as_data(tmp_path_factory: pytest.TempPathFactory, capsys: pytest.CaptureFixture[str]) -> None:
+def test_no_damage_is_read_as_data(tmp_path_factory: pytest.TempPathFactory,
+                                   capsys: pytest.CaptureFixture[str]) -> None:
     root = tmp_path_factory.mktemp("fuzz") / "store"
     build_store(root)
     fuzz = Fuzz(root)

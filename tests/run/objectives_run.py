@@ -187,3 +187,42 @@ def _busy_relay_class():
 
 BUSY_RELAY_SECONDS = 1.0
 BusyRelay = _busy_relay_class()
+
+
+BURN_MAIN, BURN_THREAD, BURN_CHILD = 0.3, 0.4, 0.5  # CPU-seconds each part of ``burns_cpu`` burns
+
+
+def _burn(seconds: float) -> None:
+    began = time.thread_time()
+    while time.thread_time() - began < seconds:
+        pass
+
+
+def burns_cpu(config, budget):
+    """Burns known CPU time in three places, and reports what the OS says each used: its own
+    thread (``time.thread_time``), a second thread it starts (the same, read in that thread)
+    and a child process it waits for (``RUSAGE_CHILDREN``). ``reference_cpu`` is their sum."""
+    import resource
+    import subprocess
+    import sys
+    import threading
+
+    main_before = time.thread_time()
+    used = {}
+
+    def second():
+        _burn(BURN_THREAD)
+        used["thread"] = time.thread_time()
+
+    thread = threading.Thread(target=second)
+    thread.start()
+    children = resource.getrusage(resource.RUSAGE_CHILDREN)
+    code = f"import time\nb = time.process_time()\nwhile time.process_time() - b < {BURN_CHILD}: pass\n"
+    subprocess.run([sys.executable, "-c", code], check=True)
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    _burn(BURN_MAIN)
+    thread.join()
+    child = (after.ru_utime + after.ru_stime) - (children.ru_utime + children.ru_stime)
+    reference = time.thread_time() - main_before + used["thread"] + child
+    return {"loss": value_at(config["x"], budget), "reference_cpu": reference, "child_cpu": child,
+            "pid": float(os.getpid())}

@@ -59,6 +59,7 @@ def test_example_loads_with_defaults(tmp_path: Path) -> None:
     assert (config.head.host, config.head.port, config.head.allow_remote) == ("127.0.0.1", 8470, False)
     assert (config.head.ray_cpus, config.head.preempt_deadline, config.head.round_seconds) == (4, 30.0, 0.05)
     assert (config.head.allowance_period, config.head.max_body_kb, config.head.ray_address) == ("week", 256, "")
+    assert config.head.queued_per_slot == 0.0  # in the lab, every start is the sharing rules' by default
     # Relative paths resolve against the config file's folder, not the current one.
     assert config.store_root == str(tmp_path / "lab" / "rungway-store")
     assert config.log_path == str(tmp_path / "lab" / "logs" / "access.log")
@@ -115,7 +116,9 @@ CASES = [
      'its nodes bring. Remove ray_cpus or ray_address'),
     ('[head]\nprot = 1\n', 'lab.toml:2: head.prot: unknown key (did you mean "port"?); the keys in [head] are: host, '
      'port, allow_remote, store, ray_address, ray_cpus, preempt_deadline, round_seconds, allowance_period, '
-     'max_body_kb, log_file'),
+     'queued_per_slot, max_body_kb, log_file'),
+    ('[head]\nqueued_per_slot = -1\n', 'lab.toml:2: head.queued_per_slot: must be a number >= 0 (got -1)'),
+    ('[head]\nqueued_per_slot = 17\n', 'lab.toml:2: head.queued_per_slot: must be a number from 0 to 16 (got 17.0)'),
     (f'[[team]]\nname = "a"\ntokens = ["{H1}"]\n\n[[team]]\nname = "b"\nweigth = 2\ntokens = ["{H2}"]\n',
      'lab.toml:7: team[1].weigth: unknown key (did you mean "weight"?); the keys in [team] are: name, '
      'guarantee_cpus, cap_cpus, weight, allowance_cpu_hours, tokens'),

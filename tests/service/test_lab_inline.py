@@ -77,8 +77,9 @@ def test_two_teams_share_the_loop_and_every_segment_is_charged(tmp_path: Path) -
         exactly_once(tmp_path, name)
     assert head.search("s-one").priority == 3
 
-    # One ledger row per segment, charged to the right team; CPU-seconds = cpus x the worker's
-    # own start-to-end time as the measurements table records it.
+    # One ledger row per segment, charged to the right team: the CPU time the segment used (as
+    # the runner measured it: never unknown here) and its reservation, cpus x the worker's own
+    # start-to-end time.
     ledger = Ledger(config.store_root).read()
     for name, team in (("v-one", "vision"), ("s-one", "speech")):
         rows = ledger[ledger["search"] == name]
@@ -90,12 +91,20 @@ def test_two_teams_share_the_loop_and_every_segment_is_charged(tmp_path: Path) -
         # Every result row has a ledger row for its trial and attempt.
         charged = set(zip(rows["trial"], rows["attempt"], strict=True))
         assert set(zip(finals["trial"], finals["attempt"], strict=True)) <= charged
-        assert (rows["cpu_seconds"] - rows["cpus"] * (rows["ended"] - rows["started"])).abs().max() < 1e-9
+        assert (rows["reserved_cpu_seconds"] - rows["cpus"] * (rows["ended"] - rows["started"])).abs().max() < 1e-9
+        assert rows["cpu_seconds"].notna().all() and (rows["cpu_seconds"] > 0).all()
     usage = head.usage(period="all")
     by_team = {t.team: t for t in usage.teams}
     for team in ("vision", "speech"):
         assert by_team[team].used_cpu_hours == pytest.approx(ledger[ledger["team"] == team]["cpu_seconds"].sum() / 3600)
     assert {s.search for s in usage.searches} == {"v-one", "s-one"}
+    # Allowances count CPU time too: the sharing state's usage is the ledger's CPU time (it
+    # accrues reservations while segments run; each one's end replaces it with what it used).
+    sharing = head.sharing.statistics()["teams"]
+    for team in ("vision", "speech"):
+        charged = ledger[ledger["team"] == team]
+        assert sharing[team]["used_cpu_hours"] == pytest.approx(charged["cpu_seconds"].sum() / 3600, rel=1e-6)
+        assert by_team[team].reserved_cpu_hours == pytest.approx(charged["reserved_cpu_seconds"].sum() / 3600)
     head.stop()
 
 

@@ -1,5 +1,6 @@
 """Two teams on one real Ray cluster (two nodes) through the lab's head: borrowing, preemption at
-checkpoints, resumption, and a ledger that agrees with the measured segment times.
+checkpoints, resumption, and a ledger whose rows carry both figures: the CPU time the
+segments used and their reservations, which agree with the measured segment times.
 
 Team alpha (guarantee 1 CPU, no cap) borrows the whole 4-CPU cluster; team beta (guarantee
 2) then submits. Beta must be handed its guarantee within one preemption deadline (plus one
@@ -108,12 +109,21 @@ tokens = ["{hash_token('rgw_b', iterations=1000)}"]
         if name == "alpha-wide":  # it borrowed all 4 CPUs: both nodes' slots
             assert finals["node"].str.rsplit("/", n=1).str[1].nunique() == 2, "alpha did not run on both nodes"
         assert len(trials) == (16 if name == "alpha-wide" else 6), f"{name}: a trial has no result"
-        # The ledger's CPU-seconds agree with the segment times the measurements record.
+        # The ledger's reservations cover the segment times the measurements record (a segment
+        # holds its CPU until its last write, which comes after its rows' end time), and are
+        # cpus x (ended - started) exactly.
         rows = ledger[(ledger["search"] == name) & (ledger["outcome"] == "result")]
         assert len(rows) == len(finals.drop_duplicates(["trial", "attempt"]))
         merged = rows.merge(finals.drop_duplicates(["trial", "attempt"]), on=["trial", "attempt"])
         measured = (merged["ended_at"] - merged["started_at"]).dt.total_seconds()
-        assert (merged["cpu_seconds"] - merged["cpus"] * measured).abs().max() < 0.01
+        assert (merged["reserved_cpu_seconds"] - merged["cpus"] * measured).min() > -0.01
+        assert (merged["reserved_cpu_seconds"] - merged["cpus"] * (merged["ended"] - merged["started"])).abs().max() < 1e-6
+        # CPU time, as the workers measured it: known for every segment that answered, and far
+        # less than the reservation for an objective that mostly sleeps.
+        mine = ledger[ledger["search"] == name]
+        answered = mine[mine["outcome"].isin(["result", "yielded"])]
+        assert answered["cpu_seconds"].notna().all() and (answered["cpu_seconds"] > 0).all()
+        assert mine["cpu_seconds"].sum() < mine["reserved_cpu_seconds"].sum()
 
     # Resumed from checkpoints: after a yield, the trial's next attempt starts past the
     # budget its yielded attempt had saved, instead of from its rung's start.

@@ -29,10 +29,11 @@ def row(team: str = "acoustics", search: str = "lr-sweep", trial: int = 0, *, en
 
 
 def fill(ledger: Ledger, parts: int, rows_per_part: int = 3, start: int = 0) -> None:
+    """Rows of both kinds: most with the CPU time they used, every third with it unknown."""
     for p in range(start, start + parts):
         ledger.append([
             row(("acoustics", "optics")[r % 2], f"s{p % 3}", trial=p, attempt=r, ended=1_000.0 + p + r / 10,
-                seconds=1.0 + r, cpus=0.5 * (1 + r % 3))
+                seconds=1.0 + r, cpus=0.5 * (1 + r % 3), cpu_seconds=None if (p + r) % 3 == 0 else 0.25 * (1 + r))
             for r in range(rows_per_part)
         ])
 
@@ -47,7 +48,7 @@ def totals(ledger: Ledger) -> dict[str, float]:
 def test_round_trip(tmp_path: Path) -> None:
     ledger = Ledger(str(tmp_path))
     rows = [row(trial=1, ended=2_000.0, seconds=30.0, cpus=4.0, memory_mb=1024, node=None, outcome="yielded",
-                preempted=True, attempt=2, rung=3),
+                preempted=True, attempt=2, rung=3, cpu_seconds=97.5),
             row("optics", "blur", trial=7, ended=1_500.0, seconds=0.0)]
     ledger.append(rows)
     ledger.append([])  # no rows: no file
@@ -57,15 +58,18 @@ def test_round_trip(tmp_path: Path) -> None:
     first, second = frame.to_dict("records")  # ordered by ended
     assert (second["team"], second["trial"], second["attempt"], second["rung"]) == ("acoustics", 1, 2, 3)
     assert pd.isna(second["node"]) and second["outcome"] == "yielded" and bool(second["preempted"])
-    assert second["cpu_seconds"] == 4.0 * 30.0 and second["memory_mb_seconds"] == 1024 * 30.0
-    assert (first["team"], first["search"], first["cpu_seconds"]) == ("optics", "blur", 0.0)
-    assert rows[0].cpu_seconds == 120.0 and rows[0].memory_mb_seconds == 1024 * 30.0
+    # CPU time used as measured; reserved: cpus x (ended - started).
+    assert second["cpu_seconds"] == 97.5 and second["reserved_cpu_seconds"] == 4.0 * 30.0
+    assert second["memory_mb_seconds"] == 1024 * 30.0
+    assert (first["team"], first["search"], first["reserved_cpu_seconds"]) == ("optics", "blur", 0.0)
+    assert pd.isna(first["cpu_seconds"])  # not measured: unknown
+    assert rows[0].reserved_cpu_seconds == 120.0 and rows[0].memory_mb_seconds == 1024 * 30.0
 
 
 def test_derived_columns_may_be_given_when_they_agree(tmp_path: Path) -> None:
     ledger = Ledger(str(tmp_path))
-    ledger.append([row(seconds=3.0, cpus=0.1, memory_mb=7, cpu_seconds=0.1 * 3.0, memory_mb_seconds=21.0)])
-    assert ledger.read()[["cpu_seconds", "memory_mb_seconds"]].values.tolist() == [[0.1 * 3.0, 21.0]]
+    ledger.append([row(seconds=3.0, cpus=0.1, memory_mb=7, reserved_cpu_seconds=0.1 * 3.0, memory_mb_seconds=21.0)])
+    assert ledger.read()[["reserved_cpu_seconds", "memory_mb_seconds"]].values.tolist() == [[0.1 * 3.0, 21.0]]
 
 
 def test_empty_ledger_reads_as_empty_frame(tmp_path: Path) -> None:
@@ -87,7 +91,7 @@ def test_files_have_the_documented_columns(tmp_path: Path) -> None:
     ledger = Ledger(str(tmp_path))
     ledger.append([row()])
     documented = _documented_columns()
-    assert len(documented) == 14
+    assert len(documented) == 15
     schema = pq.read_schema(tmp_path / "_ledger" / ledger.files()[0])
     # The doc names types as pyarrow's aliases do (float64 for what pyarrow prints as double).
     assert [(f.name, f.type, f.nullable) for f in schema] == [
@@ -105,7 +109,9 @@ def test_files_have_the_documented_columns(tmp_path: Path) -> None:
         (dict(trial=True), "trial"),
         (dict(team=None), "team"),
         (dict(cpus=float("inf")), "cpus"),
-        (dict(cpu_seconds=1.0), "cpu_seconds"),  # given, but not cpus * (ended - started) = 20
+        (dict(reserved_cpu_seconds=1.0), "reserved_cpu_seconds"),  # given, but not cpus * (ended - started) = 20
+        (dict(cpu_seconds=-1.0), "cpu_seconds"),
+        (dict(cpu_seconds=float("nan")), "cpu_seconds"),
         (dict(memory_mb_seconds=-5.0), "memory_mb_seconds"),
     ],
 )
@@ -125,27 +131,31 @@ def test_period_filter(tmp_path: Path) -> None:
     assert ledger.read(since=100.0, until=200.0)["trial"].tolist() == [1, 4]
     assert ledger.read(since=200.0)["trial"].tolist() == [2, 3]
     assert ledger.read(until=100.0).empty
+    # Unknown CPU time counts the reservation (2 CPUs x 10 s); a measured one counts as measured.
     assert ledger.cpu_seconds_by_team(since=200.0) == {"acoustics": 20.0, "optics": 20.0}
     assert ledger.cpu_seconds_by_team() == {"acoustics": 60.0, "optics": 20.0}
+    ledger.append([row("optics", trial=5, ended=400.0, cpu_seconds=7.5)])
+    assert ledger.cpu_seconds_by_team(since=200.0) == {"acoustics": 20.0, "optics": 27.5}
 
 
 def test_usage_report(tmp_path: Path) -> None:
     ledger = Ledger(str(tmp_path))
-    ledger.append([row(search="a", seconds=3600.0, cpus=2.0, memory_mb=1000),
+    ledger.append([row(search="a", seconds=3600.0, cpus=2.0, memory_mb=1000, cpu_seconds=5400.0),
                    row(search="b", seconds=1800.0, cpus=1.0, memory_mb=0),
-                   row("optics", "c", seconds=7200.0, cpus=0.5, memory_mb=2000, ended=9_000.0)])
+                   row("optics", "c", seconds=7200.0, cpus=0.5, memory_mb=2000, ended=9_000.0, cpu_seconds=720.0)])
     ledger.append([row(search="a", seconds=3600.0, cpus=1.0, memory_mb=0, ended=50_000.0)])
     teams, searches = ledger.usage(since=0.0, until=10_000.0)
+    # CPU-hours: the CPU time used (b's is unknown: its reservation); reserved: cpus x hours.
     assert teams == {
-        "acoustics": {"cpu_hours": 2.5, "memory_mb_hours": 1000.0, "segments": 2},
-        "optics": {"cpu_hours": 1.0, "memory_mb_hours": 4000.0, "segments": 1},
+        "acoustics": {"cpu_hours": 2.0, "reserved_cpu_hours": 2.5, "memory_mb_hours": 1000.0, "segments": 2},
+        "optics": {"cpu_hours": 0.2, "reserved_cpu_hours": 1.0, "memory_mb_hours": 4000.0, "segments": 1},
     }
     assert [SearchUsage(**s) for s in searches] == [
-        SearchUsage(team="acoustics", search="a", cpu_hours=2.0, segments=1),
-        SearchUsage(team="acoustics", search="b", cpu_hours=0.5, segments=1),
-        SearchUsage(team="optics", search="c", cpu_hours=1.0, segments=1),
+        SearchUsage(team="acoustics", search="a", cpu_hours=1.5, reserved_cpu_hours=2.0, segments=1),
+        SearchUsage(team="acoustics", search="b", cpu_hours=0.5, reserved_cpu_hours=0.5, segments=1),
+        SearchUsage(team="optics", search="c", cpu_hours=0.2, reserved_cpu_hours=1.0, segments=1),
     ]
-    assert ledger.usage()[0]["acoustics"]["cpu_hours"] == 3.5
+    assert ledger.usage()[0]["acoustics"]["cpu_hours"] == 3.0
 
 
 def test_uri_root(tmp_path: Path) -> None:
@@ -320,4 +330,32 @@ def test_duckdb_and_pyarrow_read_the_folder(tmp_path: Path) -> None:
     table = dataset.to_table()
     assert table.num_rows == len(ledger.read()) == 24
     assert table.schema.equals(LEDGER_SCHEMA)
-    assert pa.compute.sum(table["cpu_seconds"]).as_py() == pytest.approx(sum(totals(ledger).values()))
+    charged = pa.compute.coalesce(table["cpu_seconds"], table["reserved_cpu_seconds"])
+    assert pa.compute.sum(charged).as_py() == pytest.approx(sum(totals(ledger).values()))
+    assert table["cpu_seconds"].null_count == 8  # fill() leaves every third row's CPU time unknown
+
+
+def test_files_of_the_first_format_read_as_reservations(tmp_path: Path) -> None:
+    """A ledger file written before rows carried both figures (its cpu_seconds was cpus x
+    (ended - started), and it has no reserved_cpu_seconds) reads as a reservation whose CPU
+    time is unknown, and sums count it as it was charged when written."""
+    ledger = Ledger(str(tmp_path))
+    ledger.append([row(trial=1, seconds=10.0, cpus=2.0, cpu_seconds=4.0)])
+    new = ledger.read()
+    old = pq.read_table(tmp_path / "_ledger" / ledger.files()[0])
+    old = old.drop_columns(["cpu_seconds", "reserved_cpu_seconds"]).append_column(
+        pa.field("cpu_seconds", pa.float64(), nullable=False), pa.array([30.0]))
+    from rungway.scheduler.store.checksums import parquet_bytes, sha256_hex
+
+    data = parquet_bytes(old)
+    (tmp_path / "_ledger" / f"part-{sha256_hex(data)[:32]}.parquet").write_bytes(data)
+    frame = ledger.read()
+    assert len(frame) == 2 and list(frame.columns) == LEDGER_SCHEMA.names
+    first_format = frame[frame["cpu_seconds"].isna()]
+    assert first_format["reserved_cpu_seconds"].tolist() == [30.0]
+    assert ledger.cpu_seconds_by_team() == {"acoustics": 4.0 + 30.0}
+    assert new["reserved_cpu_seconds"].tolist() == [20.0]
+    # Compaction writes them in the current format, with the same figures.
+    ledger.compact(min_parts=1)
+    assert ledger.statistics() == {"parts": 0, "blocks": 1, "leftovers": 0}
+    pd.testing.assert_frame_equal(ledger.read(), frame)

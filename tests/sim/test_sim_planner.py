@@ -104,7 +104,8 @@ def test_cli_json_and_seconds_per_unit(demo_file, capsys):
     assert wall["low"] <= wall["median"] <= wall["high"]
     expected = plan_search(DEMO, workers=4, cost=LinearCost(2.0), repeats=5)
     assert wall["median"] == pytest.approx(expected.wall_seconds.median)
-    assert [r["budget"] for r in data["brackets"][0]] == [1, 3, 9, 27]
+    assert [r["budget"] for r in data["brackets"][0]["rungs"]] == [1, 3, 9, 27]
+    assert data["brackets"][0]["s"] == 3  # Li et al.'s s: four rungs, starting at the minimum budget
 
 
 def test_cli_fits_the_cost_to_a_finished_search(demo_file, tmp_path, capsys):

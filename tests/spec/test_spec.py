@@ -58,7 +58,7 @@ population = 8
 sample_size = 3
 
 [limits]
-trials = 200
+trials = 12
 cpu_hours = 2.0
 deadline = "1h30m"
 max_crashes = 1
@@ -251,7 +251,7 @@ def test_a_full_spec_loads_with_every_field(tmp_path: Path) -> None:
         eta=3,
         early_stopping_rate=1,
         maximize=True,
-        max_trials=200,
+        max_trials=12,
         max_crashes=1,
         sync_trials=12,
         iterations=1,
