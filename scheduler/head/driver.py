@@ -873,7 +873,7 @@ class SearchDriver:
                 if kind == "crash":
                     self.files.record_failure(run.trial, run.rung, run.attempt, "Hang", why, "", run.node)
                 entry = {"e": kind, "t": run.trial, "a": run.attempt, "why": why,
-                         "cpu": self.spec.resources.cpus * (now - run.submitted), "el": self.elapsed}
+                         **self._unanswered(run, now), "el": self.elapsed}
                 if kind == "lost":
                     entry["counted"] = True
                 entries.append((entry, run))
