@@ -182,7 +182,26 @@ def check_lab_round(data: dict[str, Any]) -> None:
     number(data["first_turn_ms"])
 
 
+def check_accounting(data: dict[str, Any]) -> None:
+    assert data["limit_cpu_s"] == 6.0 and data["cpus"] == 2  # --smoke
+    assert [(r["method"], r["form"]) for r in data["runs"]] == [
+        ("asha", "plain"), ("asha", "resumable"), ("hyperband", "plain"), ("hyperband", "resumable"), ("baseline", "plain")]
+    for run in data["runs"]:
+        assert run["objective_calls"] > 0 and run["objective_pids"] >= 1
+        for key in ("workers_per_slot", "objective_cpu_s", "worker_os_cpu_s", "extra_cpu", "overshoot", "wall_s"):
+            number(run[key])
+        if run["method"] != "baseline":
+            number(run["charged_cpu_s"])
+            number(run["charged_over_os"])
+            assert run["listener_cpu_s"] == pytest.approx(run["charged_cpu_s"])
+            assert isinstance(run["overshoot_met"], bool)
+    for name, figures in data["summary"].items():
+        for key in ("workers_per_slot", "extra_cpu", "overshoot", "objective_cpu_s"):
+            spread_ok(figures[key])
+
+
 CHECKS = {
+    "accounting": check_accounting,
     "sharing_round": check_sharing_round, "lab_round": check_lab_round,
     "core_cost": check_core_cost, "dispatch": check_dispatch, "utilization": check_utilization,
     "quality": check_quality, "recovery": check_recovery, "journal_replay": check_journal_replay,
@@ -214,7 +233,7 @@ def test_the_runner_renders_every_section(dirs: dict[str, Path]) -> None:
     assert all(not r["errors"] for r in results), [r["errors"] for r in results]
     for heading in ("## Summary", "## Scheduling core", "## Dispatch overhead", "## Utilization",
                     "## Search quality per CPU-second", "## Recovery", "## Journal replay", "## Simulator scale",
-                    "## Sharing round", "## Lab head turn",
+                    "## Sharing round", "## Lab head turn", "## Accounting",
                     "## Simulator accuracy"):
         assert heading in text
     summary = text.split("## Summary", 1)[1].split("## Runs", 1)[0]
