@@ -173,8 +173,8 @@ def _show_one(search: dict[str, Any]) -> None:
     print(f"{search['name']} ({search['team']}): {_state(search)}, priority {search['priority']}")
     print(f"  {search['metric']} ({search['better']} is better); best {_best(search) or 'none yet'}")
     print(f"  {search['trials']} trials, {search['segments']} segments ({search['running_segments']} running, "
-          f"{search.get('queued_segments', 0)} queued), {search['cpus_busy']:g} CPUs busy, "
-          f"{_num(search['cpu_seconds'] / 3600)} CPU-hours used, "
+          f"{search.get('queued_segments', 0)} queued), {search['cpus_busy']:g} CPUs busy")
+    print(f"  CPU-hours: {_num(search['cpu_seconds'] / 3600)} used, "
           f"{_num(search.get('reserved_cpu_seconds', search['cpu_seconds']) / 3600)} reserved")
     board = search.get("leaderboard") or []
     if board:

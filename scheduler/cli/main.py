@@ -247,7 +247,7 @@ def _print_summary(summary: dict[str, Any], metric: str) -> None:
     print(f"search {summary['search']} {state} after {summary['elapsed_seconds']:.1f}s: {summary['trials']} trials, {summary['segments']} segments")
     if summary.get("limit"):
         print(f"stopped by its limit: {summary['limit']}")
-    print(f"CPU: {summary['cpu_hours']:.4g} CPU-hours used (the objective's CPU time), "
+    print(f"CPU-hours: {summary['cpu_hours']:.4g} used (CPU time), "
           f"{summary['reserved_cpu_hours']:.4g} reserved (CPUs x wall time)")
     if summary["failing"]:
         print(f"failing: {summary['failing']}")
@@ -340,8 +340,8 @@ def _usage_line(spec: Any, meta: dict[str, Any], stats: dict[str, Any]) -> str:
     limit = spec.limits.cpu_hours
     of = f" of limits.cpu_hours = {limit:g}" if limit is not None else ""
     return (f"{meta.get('running', 0)} running, {meta.get('queued', 0)} queued (at the last snapshot); "
-            f"{stats.get('segments', meta.get('segments', 0))} segments; CPU {cpu / 3600:.4g}{of} CPU-hours used "
-            f"(CPU time), {reserved / 3600:.4g} reserved (CPUs x wall time)")
+            f"{stats.get('segments', meta.get('segments', 0))} segments\n"
+            f"CPU-hours: {cpu / 3600:.4g}{of} used (CPU time), {reserved / 3600:.4g} reserved (CPUs x wall time)")
 
 
 def cmd_list(args: argparse.Namespace) -> int:

@@ -386,6 +386,7 @@ class SearchDriver:
         journal drop what the snapshot covers."""
         if self.lease is not None:
             self.lease.check()  # a head that lost its search's lease writes no snapshot over the new holder's
+        running, queued = self.running_now()
         meta = {
             "lease": None if self.lease is None else self.lease.token,  # the fencing token it was written under
             "budget_done": self.budget_done,
@@ -394,8 +395,8 @@ class SearchDriver:
             "costs": self.limits.state(),
             "elapsed": self.elapsed,
             "segments": self.segments,
-            "running": self.running_now()[0] if self.running else 0,
-            "queued": self.running_now()[1] if self.running else 0,
+            "running": running,
+            "queued": queued,
             "ended_by": self.ended_by,
         }
         self._commit()

@@ -111,7 +111,7 @@ def counted(ctx):
     pid, present from the segment's first unit until it returns), ``pids/`` (every process that
     ran a segment) and ``counts`` (one line per unit: the pid and the markers present then).
     Until ``RUNGWAY_TEST_MEET`` segments have been seen running together, a unit waits for them
-    (at most a minute), so that a search of many short segments does reach full width. Every
+    (at most five minutes), so that a search of many short segments does reach full width. Every
     unit saves, reports and checks ``ctx.asked_to_yield``.
     """
     folder = os.environ["RUNGWAY_TEST_COUNT"]
@@ -129,7 +129,7 @@ def counted(ctx):
             open(mark, "w").close()
             _count_running(folder, running, pid)
             met = os.path.join(folder, "met")
-            give_up = time.monotonic() + 60.0
+            give_up = time.monotonic() + 300.0  # a bound for a hung run, not a speed
             while not os.path.exists(met) and time.monotonic() < give_up:
                 if len(os.listdir(running)) >= meet:
                     open(met, "w").close()

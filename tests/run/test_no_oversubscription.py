@@ -101,7 +101,7 @@ def _executor(relay: str) -> RayExecutor:
 
 
 # A segment that never hears its verdict, or a search that never ends, fails the test instead of hanging it.
-GUARDS = 'hang_timeout = 120\ndeadline = "15m"\n'
+GUARDS = 'hang_timeout = 400\ndeadline = "15m"\n'
 
 
 def _run(text: str, root: Path, relay: str) -> SearchDriver:
